@@ -1,0 +1,106 @@
+"""Records that cross module lines: one seed run, and the table row it becomes.
+
+Plain dataclasses with `to_dict`/`from_dict`, torch-free, so that the store,
+the fitting code and the report can all read them without importing torch.
+"""
+from __future__ import annotations
+
+import csv
+import math
+from dataclasses import asdict, dataclass, field, fields
+from pathlib import Path
+from typing import Any
+
+#: How a seed run ended. `censored` means the budget ran out first: the run's
+#: updates-to-convergence is a lower bound (T >= iterations), not a value.
+STATUSES = ("converged", "censored", "diverged")
+
+#: Columns of `runs.csv`, in order. `iterations` is T for converged runs and
+#: the number of updates done (the budget) for censored ones.
+RUN_COLUMNS = (
+    "depth", "width", "seed", "learning_rate", "lr_mode", "status", "iterations",
+    "wall_seconds", "seconds_per_update", "final_train_loss", "final_train_accuracy",
+    "validation_accuracy", "n_params", "activation", "init", "optimizer", "cell_id",
+)
+
+
+@dataclass(frozen=True)
+class RunResult:
+    """What one seed run at one depth and learning rate measured."""
+
+    depth: int
+    width: int                      # width of the first hidden layer
+    seed: int
+    learning_rate: float
+    status: str                     # one of STATUSES
+    iterations: int                 # T if converged, updates done otherwise
+    wall_seconds: float             # this seed's share of its cell's wall time
+    seconds_per_update: float       # wall seconds per update of this seed
+    final_train_loss: float
+    final_train_accuracy: float
+    validation_accuracy: float
+    n_params: int
+    activation: str = ""
+    init: str = ""
+    optimizer: str = "sgd"
+    lr_mode: str = "fixed"          # fixed | tuned
+    cell_id: str = ""
+    # curves: evaluation steps with the full-training-set loss at each
+    eval_steps: tuple[int, ...] = ()
+    train_loss: tuple[float, ...] = ()
+    # probes: log-spaced steps; one list per layer (input side first)
+    probe_steps: tuple[int, ...] = ()
+    displacement: tuple[tuple[float, ...], ...] = ()
+    snr_db: tuple[tuple[float, ...], ...] = ()
+    extra: dict[str, Any] = field(default_factory=dict)
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON-ready dict (tuples become lists, NaN becomes None)."""
+        return _jsonable(asdict(self))
+
+    @classmethod
+    def from_dict(cls, d: dict[str, Any]) -> "RunResult":
+        """Inverse of `to_dict`; unknown keys are ignored."""
+        names = {f.name for f in fields(cls)}
+        kw = {k: v for k, v in d.items() if k in names}
+        for key in ("eval_steps", "train_loss", "probe_steps"):
+            kw[key] = tuple(_num(v) for v in kw.get(key, ()) or ())
+        for key in ("displacement", "snr_db"):
+            kw[key] = tuple(tuple(_num(v) for v in row) for row in kw.get(key, ()) or ())
+        for key in ("final_train_loss", "final_train_accuracy", "validation_accuracy"):
+            kw[key] = _num(kw.get(key))
+        return cls(**kw)
+
+    def row(self) -> dict[str, Any]:
+        """The `runs.csv` row of this run."""
+        d = self.to_dict()
+        return {c: d[c] for c in RUN_COLUMNS}
+
+
+def _num(v: Any) -> Any:
+    return math.nan if v is None else v
+
+
+def _jsonable(v: Any) -> Any:
+    if isinstance(v, float):
+        return v if math.isfinite(v) else None
+    if isinstance(v, dict):
+        return {str(k): _jsonable(x) for k, x in v.items()}
+    if isinstance(v, (list, tuple)):
+        return [_jsonable(x) for x in v]
+    return v
+
+
+def write_runs_csv(results: list[RunResult], path: Path) -> Path:
+    """Write one row per seed run to `path` atomically and return it."""
+    path = Path(path)
+    tmp = path.with_suffix(path.suffix + ".tmp")
+    ordered = sorted(results, key=lambda r: (r.lr_mode, r.learning_rate, r.depth, r.seed))
+    with tmp.open("w", newline="") as fh:
+        writer = csv.DictWriter(fh, fieldnames=RUN_COLUMNS)
+        writer.writeheader()
+        for r in ordered:
+            row = r.row()
+            writer.writerow({k: ("" if v is None else v) for k, v in row.items()})
+    tmp.replace(path)
+    return path
