@@ -104,3 +104,30 @@ def write_runs_csv(results: list[RunResult], path: Path) -> Path:
             writer.writerow({k: ("" if v is None else v) for k, v in row.items()})
     tmp.replace(path)
     return path
+
+
+@dataclass(frozen=True)
+class CellSpec:
+    """One unit of work: the seeds of one depth and learning rate, trained as one batch."""
+
+    depth: int
+    seeds: tuple[int, ...]
+    learning_rate: float
+    lr_mode: str = "fixed"            # fixed | tuned | tuning
+    stop_after: int | None = None     # early-censoring budget below max_updates, if any
+
+    @property
+    def cell_id(self) -> str:
+        """Stable id of the cell, from what it trains (used to skip finished work)."""
+        seeds = "-".join(str(s) for s in self.seeds)
+        return f"K{self.depth}-lr{self.learning_rate:.6g}-{self.lr_mode}-s{seeds}"
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"depth": self.depth, "seeds": list(self.seeds), "learning_rate": self.learning_rate,
+                "lr_mode": self.lr_mode, "stop_after": self.stop_after}
+
+    @classmethod
+    def from_dict(cls, d: dict[str, Any]) -> "CellSpec":
+        return cls(depth=int(d["depth"]), seeds=tuple(int(s) for s in d["seeds"]),
+                   learning_rate=float(d["learning_rate"]), lr_mode=str(d.get("lr_mode", "fixed")),
+                   stop_after=None if d.get("stop_after") is None else int(d["stop_after"]))

@@ -1,0 +1,427 @@
+"""Read a sweep file, check every field, return frozen config dataclasses.
+
+The only module that knows YAML exists. Every problem is collected with its key
+path (`sweep.depths[2]: must be a positive integer, got 0`) and raised once as a
+`ConfigError`, so a user fixes a file in one pass.
+"""
+from __future__ import annotations
+
+import difflib
+import hashlib
+import json
+import math
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any, Callable
+
+import yaml
+
+from .errors import ConfigError
+
+SOURCES = ("synthetic", "digits", "iris", "wine", "breast_cancer", "csv", "npz", "npy")
+ACTIVATIONS = ("tanh", "relu", "gelu", "sigmoid")
+INITS = ("default", "xavier", "glorot", "he", "kaiming", "orthogonal")
+OPTIMIZERS = ("sgd", "adam")
+
+
+@dataclass(frozen=True)
+class DataConfig:
+    source: str = "synthetic"
+    path: str | None = None          # csv / npz / npy features file (absolute once loaded)
+    label: str | None = None         # csv: label column name; npz: label array key
+    features: str = "X"              # npz: features array key
+    label_path: str | None = None    # npy: labels file
+    validation_fraction: float = 0.2
+    split_seed: int = 0
+    # synthetic scenario
+    n_samples: int = 2000
+    n_features: int = 64
+    n_latent: int = 4
+    n_classes: int = 4
+    noise: float = 0.5
+    scenario_seed: int = 0
+
+
+@dataclass(frozen=True)
+class ModelConfig:
+    width: int | tuple[int, ...] = 32
+    activation: str = "tanh"
+    init: str = "he"
+    init_gain: float | None = None   # None: the activation's gain for he, 1 for the others
+
+    def widths(self, depth: int) -> tuple[int, ...]:
+        """Hidden widths of a network with `depth` hidden layers."""
+        if isinstance(self.width, int):
+            return (self.width,) * depth
+        return tuple(self.width[:depth])
+
+
+@dataclass(frozen=True)
+class SweepConfig:
+    depths: tuple[int, ...] = (1, 2, 3, 4, 6, 8)
+    seeds: tuple[int, ...] = (0, 1, 2, 3, 4)
+    seeds_per_cell: int | None = None  # None: all seeds of a depth train as one batch
+
+
+@dataclass(frozen=True)
+class ConvergeConfig:
+    train_loss_below: float | None = None
+    train_accuracy_at_least: float | None = None
+    validation_accuracy_at_least: float | None = None
+
+
+@dataclass(frozen=True)
+class TrainConfig:
+    optimizer: str = "sgd"
+    learning_rate: tuple[float, ...] = (0.05,)
+    momentum: float = 0.0
+    batch_size: int = 32
+    max_updates: int = 20000
+    eval_every: int = 20
+    converge_when: ConvergeConfig = field(default_factory=lambda: ConvergeConfig(train_loss_below=0.1))
+
+
+@dataclass(frozen=True)
+class ProbeConfig:
+    displacement: bool = True
+    snr: bool = True
+    n_points: int = 24        # log-spaced probe steps between 1 and max_updates
+    snr_window: int = 16      # minibatch gradients drawn at the current weights per probe step
+
+
+@dataclass(frozen=True)
+class OutputConfig:
+    dir: str | None = None        # default: results/<name> next to the working directory
+    storage: str | None = None    # Optuna storage URL; default: SQLite file in the output folder
+
+
+@dataclass(frozen=True)
+class SweepFile:
+    name: str
+    data: DataConfig
+    model: ModelConfig
+    sweep: SweepConfig
+    train: TrainConfig
+    probes: ProbeConfig
+    output: OutputConfig
+    source_path: str = ""
+
+    def to_dict(self) -> dict[str, Any]:
+        """The resolved config as plain data (what is written beside the results)."""
+        d = asdict(self)
+        d.pop("source_path")
+        return json.loads(json.dumps(d))
+
+    def fingerprint(self) -> str:
+        """Hash of everything that changes what a run measures (not where it is written)."""
+        d = self.to_dict()
+        d.pop("output")
+        d.pop("name")
+        return hashlib.sha256(json.dumps(d, sort_keys=True).encode()).hexdigest()[:16]
+
+
+# --------------------------------------------------------------------------- checking
+
+class _Checker:
+    """Collects problems with their key paths."""
+
+    def __init__(self) -> None:
+        self.problems: list[str] = []
+
+    def add(self, path: str, msg: str) -> None:
+        self.problems.append(f"{path}: {msg}")
+
+    def keys(self, path: str, got: Any, allowed: tuple[str, ...]) -> dict[str, Any]:
+        if got is None:
+            return {}
+        if not isinstance(got, dict):
+            self.add(path or "top level", f"must be a mapping of keys, got {_show(got)}")
+            return {}
+        for key in got:
+            if key not in allowed:
+                near = difflib.get_close_matches(str(key), allowed, n=1)
+                hint = f" (did you mean '{near[0]}'?)" if near else f"; allowed: {', '.join(allowed)}"
+                where = f" in {path}" if path else ""
+                self.problems.append(f"unknown key '{key}'{where}{hint}")
+        return got
+
+    def take(self, d: dict[str, Any], path: str, key: str, check: Callable[[Any], Any], default: Any) -> Any:
+        if key not in d or d[key] is None and default is None:
+            return default
+        try:
+            return check(d[key])
+        except ValueError as exc:
+            self.add(f"{path}.{key}" if path else key, str(exc))
+            return default
+
+
+def _show(v: Any) -> str:
+    return repr(v) if isinstance(v, str) else json.dumps(v, default=str)
+
+
+def _int(lo: int = 1) -> Callable[[Any], int]:
+    def check(v: Any) -> int:
+        if isinstance(v, bool) or not isinstance(v, int) or v < lo:
+            what = "a positive integer" if lo == 1 else f"an integer >= {lo}"
+            raise ValueError(f"must be {what}, got {_show(v)}")
+        return v
+    return check
+
+
+def _float(lo: float = 0.0, hi: float = math.inf, lo_open: bool = True, hi_open: bool = False) -> Callable[[Any], float]:
+    def check(v: Any) -> float:
+        ok = isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
+        if ok:
+            ok = (v > lo if lo_open else v >= lo) and (v < hi if hi_open else v <= hi)
+        if not ok:
+            lo_s = f"> {lo:g}" if lo_open else f">= {lo:g}"
+            hi_s = "" if math.isinf(hi) else (f" and < {hi:g}" if hi_open else f" and <= {hi:g}")
+            raise ValueError(f"must be a number {lo_s}{hi_s}, got {_show(v)}")
+        return float(v)
+    return check
+
+
+def _choice(options: tuple[str, ...]) -> Callable[[Any], str]:
+    def check(v: Any) -> str:
+        if not isinstance(v, str) or v.lower() not in options:
+            near = difflib.get_close_matches(str(v).lower(), options, n=1)
+            hint = f" (did you mean '{near[0]}'?)" if near else ""
+            raise ValueError(f"must be one of {', '.join(options)}, got {_show(v)}{hint}")
+        return v.lower()
+    return check
+
+
+def _text(v: Any) -> str:
+    if not isinstance(v, str) or not v.strip():
+        raise ValueError(f"must be a non-empty string, got {_show(v)}")
+    return v
+
+
+def _flag(v: Any) -> bool:
+    if not isinstance(v, bool):
+        raise ValueError(f"must be true or false, got {_show(v)}")
+    return v
+
+
+def _int_list(c: _Checker, path: str, v: Any, *, unique: bool = True, lo: int = 1) -> tuple[int, ...] | None:
+    if not isinstance(v, list) or not v:
+        what = "positive integers" if lo == 1 else f"integers >= {lo}"
+        c.add(path, f"must be a non-empty list of {what}, got {_show(v)}")
+        return None
+    out, ok = [], True
+    for i, x in enumerate(v):
+        try:
+            out.append(_int(lo)(x))
+        except ValueError as exc:
+            c.add(f"{path}[{i}]", str(exc))
+            ok = False
+    if ok and unique and len(set(out)) != len(out):
+        c.add(path, f"must not repeat a value, got {_show(v)}")
+        ok = False
+    return tuple(out) if ok else None
+
+
+# --------------------------------------------------------------------------- sections
+
+def _data(c: _Checker, raw: Any, base: Path) -> DataConfig:
+    d = c.keys("data", raw, tuple(DataConfig.__dataclass_fields__))
+    dflt = DataConfig()
+    source = c.take(d, "data", "source", _choice(SOURCES), dflt.source)
+    kw: dict[str, Any] = {"source": source}
+    for key in ("path", "label", "label_path", "features"):
+        kw[key] = c.take(d, "data", key, _text, getattr(dflt, key))
+    for key in ("path", "label_path"):
+        if kw[key] is not None:
+            p = Path(kw[key]).expanduser()
+            kw[key] = str(p if p.is_absolute() else (base / p).resolve())
+    kw["validation_fraction"] = c.take(d, "data", "validation_fraction", _float(0.0, 0.9, lo_open=False), dflt.validation_fraction)
+    kw["split_seed"] = c.take(d, "data", "split_seed", _int(0), dflt.split_seed)
+    for key in ("n_samples", "n_features", "n_latent"):
+        kw[key] = c.take(d, "data", key, _int(), getattr(dflt, key))
+    kw["n_classes"] = c.take(d, "data", "n_classes", _int(2), dflt.n_classes)
+    kw["noise"] = c.take(d, "data", "noise", _float(0.0, lo_open=False), dflt.noise)
+    kw["scenario_seed"] = c.take(d, "data", "scenario_seed", _int(0), dflt.scenario_seed)
+    if source in ("csv", "npz", "npy") and kw["path"] is None:
+        c.add("data.path", f"is required when data.source is {source}")
+    if source == "csv" and kw["label"] is None:
+        c.add("data.label", "is required when data.source is csv (the name of the label column)")
+    if source == "npy" and kw["label_path"] is None:
+        c.add("data.label_path", "is required when data.source is npy (the labels .npy file)")
+    if source == "npz" and kw["label"] is None:
+        kw["label"] = "y"
+    for key in ("path", "label_path"):
+        if kw[key] is not None and source in ("csv", "npz", "npy") and not Path(kw[key]).is_file():
+            c.add(f"data.{key}", f"no such file: {kw[key]}")
+    return DataConfig(**kw)
+
+
+def _model(c: _Checker, raw: Any) -> ModelConfig:
+    d = c.keys("model", raw, tuple(ModelConfig.__dataclass_fields__))
+    dflt = ModelConfig()
+    width: Any = dflt.width
+    if "width" in d:
+        if isinstance(d["width"], list):
+            width = _int_list(c, "model.width", d["width"], unique=False) or dflt.width
+        else:
+            width = c.take(d, "model", "width", _int(), dflt.width)
+    return ModelConfig(
+        width=width,
+        activation=c.take(d, "model", "activation", _choice(ACTIVATIONS), dflt.activation),
+        init=c.take(d, "model", "init", _choice(INITS), dflt.init),
+        init_gain=c.take(d, "model", "init_gain", _float(), None),
+    )
+
+
+def _sweep(c: _Checker, raw: Any) -> SweepConfig:
+    d = c.keys("sweep", raw, tuple(SweepConfig.__dataclass_fields__))
+    dflt = SweepConfig()
+    depths = _int_list(c, "sweep.depths", d["depths"]) if "depths" in d else dflt.depths
+    seeds: Any = dflt.seeds
+    if "seeds" in d:
+        s = d["seeds"]
+        if isinstance(s, list):
+            seeds = _int_list(c, "sweep.seeds", s, lo=0) or dflt.seeds
+        else:
+            n = c.take(d, "sweep", "seeds", _int(), None)
+            seeds = tuple(range(n)) if n else dflt.seeds
+    per_cell = c.take(d, "sweep", "seeds_per_cell", _int(), None)
+    return SweepConfig(depths=tuple(sorted(depths or dflt.depths)), seeds=seeds, seeds_per_cell=per_cell)
+
+
+def _train(c: _Checker, raw: Any) -> TrainConfig:
+    d = c.keys("train", raw, tuple(TrainConfig.__dataclass_fields__))
+    dflt = TrainConfig()
+    lr: Any = dflt.learning_rate
+    if "learning_rate" in d:
+        v = d["learning_rate"]
+        if isinstance(v, list) and v:
+            vals = []
+            for i, x in enumerate(v):
+                try:
+                    vals.append(_float()(x))
+                except ValueError as exc:
+                    c.add(f"train.learning_rate[{i}]", str(exc))
+            if len(set(vals)) != len(vals):
+                c.add("train.learning_rate", f"must not repeat a value, got {_show(v)}")
+            lr = tuple(vals) if vals else lr
+        else:
+            one = c.take(d, "train", "learning_rate", _float(), None)
+            lr = (one,) if one is not None else lr
+    cw_raw = d.get("converge_when", None)
+    cw = c.keys("train.converge_when", cw_raw, tuple(ConvergeConfig.__dataclass_fields__))
+    conv = dflt.converge_when
+    if "converge_when" in d:
+        conv = ConvergeConfig(
+            train_loss_below=c.take(cw, "train.converge_when", "train_loss_below", _float(), None),
+            train_accuracy_at_least=c.take(cw, "train.converge_when", "train_accuracy_at_least", _float(0.0, 1.0), None),
+            validation_accuracy_at_least=c.take(cw, "train.converge_when", "validation_accuracy_at_least", _float(0.0, 1.0), None),
+        )
+        if isinstance(cw_raw, dict) and all(v is None for v in asdict(conv).values()):
+            c.add("train.converge_when", "must set at least one of train_loss_below, train_accuracy_at_least, validation_accuracy_at_least")
+    t = TrainConfig(
+        optimizer=c.take(d, "train", "optimizer", _choice(OPTIMIZERS), dflt.optimizer),
+        learning_rate=lr,
+        momentum=c.take(d, "train", "momentum", _float(0.0, 1.0, lo_open=False, hi_open=True), dflt.momentum),
+        batch_size=c.take(d, "train", "batch_size", _int(), dflt.batch_size),
+        max_updates=c.take(d, "train", "max_updates", _int(), dflt.max_updates),
+        eval_every=c.take(d, "train", "eval_every", _int(), dflt.eval_every),
+        converge_when=conv,
+    )
+    if t.eval_every > t.max_updates:
+        c.add("train.eval_every", f"must not exceed train.max_updates ({t.max_updates}), got {t.eval_every}")
+    return t
+
+
+def _probes(c: _Checker, raw: Any) -> ProbeConfig:
+    d = c.keys("probes", raw, tuple(ProbeConfig.__dataclass_fields__))
+    dflt = ProbeConfig()
+    return ProbeConfig(
+        displacement=c.take(d, "probes", "displacement", _flag, dflt.displacement),
+        snr=c.take(d, "probes", "snr", _flag, dflt.snr),
+        n_points=c.take(d, "probes", "n_points", _int(2), dflt.n_points),
+        snr_window=c.take(d, "probes", "snr_window", _int(2), dflt.snr_window),
+    )
+
+
+def _output(c: _Checker, raw: Any, base: Path) -> OutputConfig:
+    d = c.keys("output", raw, tuple(OutputConfig.__dataclass_fields__))
+    out = c.take(d, "output", "dir", _text, None)
+    if out is not None and not Path(out).expanduser().is_absolute():
+        out = str((base / out).resolve())
+    storage = c.take(d, "output", "storage", _text, None)
+    if storage is not None and "://" in storage and "@" in storage.split("://", 1)[1].split("/", 1)[0]:
+        c.add("output.storage", "must not hold credentials; set DEPTHPLAN_STORAGE in the environment or pass --storage")
+    return OutputConfig(dir=out, storage=storage)
+
+
+TOP_KEYS = ("name", "data", "model", "sweep", "train", "probes", "output")
+
+
+def parse_config(raw: Any, *, base_dir: Path, where: str = "sweep file") -> SweepFile:
+    """Check a parsed YAML mapping and return the frozen config.
+
+    Args:
+        raw: what `yaml.safe_load` returned.
+        base_dir: folder that relative paths in the file are taken from.
+        where: the file name used in the error summary.
+
+    Raises:
+        ConfigError: listing every problem, one per line, each with its key path.
+    """
+    c = _Checker()
+    top = c.keys("", raw, TOP_KEYS)
+    if not isinstance(raw, dict):
+        raise ConfigError(f"{where}: must be a YAML mapping with keys {', '.join(TOP_KEYS)}")
+    name = c.take(top, "", "name", _text, None)
+    if name is None and "name" not in top:
+        c.add("name", "is required (it names the results folder)")
+    elif name is not None and any(ch in name for ch in "/\\") or name in (".", ".."):
+        c.add("name", f"must be usable as a folder name, got {_show(name)}")
+    cfg = SweepFile(
+        name=name or "",
+        data=_data(c, top.get("data"), base_dir),
+        model=_model(c, top.get("model")),
+        sweep=_sweep(c, top.get("sweep")),
+        train=_train(c, top.get("train")),
+        probes=_probes(c, top.get("probes")),
+        output=_output(c, top.get("output"), base_dir),
+        source_path=str(where),
+    )
+    if isinstance(cfg.model.width, tuple) and len(cfg.model.width) < max(cfg.sweep.depths):
+        c.add("model.width", f"lists {len(cfg.model.width)} widths but sweep.depths goes to {max(cfg.sweep.depths)}")
+    if c.problems:
+        n = len(c.problems)
+        head = f"{n} problem{'s' if n > 1 else ''} in {Path(where).name}: "
+        raise ConfigError(head + "; ".join(c.problems))
+    return cfg
+
+
+def load_config(path: str | Path) -> SweepFile:
+    """Read and check a YAML sweep file.
+
+    Raises:
+        ConfigError: the file is missing, is not YAML, or any key is wrong.
+    """
+    p = Path(path)
+    if not p.is_file():
+        raise ConfigError(f"{p}: no such sweep file")
+    try:
+        raw = yaml.safe_load(p.read_text())
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        at = f" line {mark.line + 1}, column {mark.column + 1}" if mark else ""
+        problem = getattr(exc, "problem", None) or str(exc).splitlines()[0]
+        raise ConfigError(f"{p}:{at}: not valid YAML ({problem})") from None
+    except UnicodeDecodeError:
+        raise ConfigError(f"{p}: not a text file") from None
+    return parse_config(raw, base_dir=p.resolve().parent, where=str(p))
+
+
+def config_from_dict(d: dict[str, Any], *, base_dir: Path | None = None) -> SweepFile:
+    """Build a config from a resolved dict (as written beside results)."""
+    return parse_config(d, base_dir=base_dir or Path.cwd(), where="resolved config")
+
+
+def dump_config(cfg: SweepFile) -> str:
+    """The resolved config as YAML text."""
+    return yaml.safe_dump(cfg.to_dict(), sort_keys=False)
