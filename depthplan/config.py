@@ -38,7 +38,7 @@ class DataConfig:
     n_features: int = 64
     n_latent: int = 4
     n_classes: int = 4
-    noise: float = 0.5
+    noise: float = 0.3
     scenario_seed: int = 0
 
 

@@ -1,0 +1,4 @@
+"""`python -m depthplan`: the same as the `depthplan` command."""
+from .cli import main
+
+raise SystemExit(main())

@@ -1,0 +1,200 @@
+"""Command line: parse, call one library function, print.
+
+Torch is imported only inside the commands that train (`run`, `demo`,
+`worker`), so `--help`, `check`, `fit` and `report` start fast.
+"""
+from __future__ import annotations
+
+import argparse
+import logging
+import sys
+from pathlib import Path
+from typing import Callable, Sequence
+
+from . import __version__
+from .errors import ConfigError, DepthplanError
+
+log = logging.getLogger("depthplan")
+
+DEMO_CONFIG = Path(__file__).resolve().parent.parent / "configs" / "demo.yaml"
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse that reports a usage mistake as one line and exit status 2."""
+
+    def error(self, message: str) -> None:  # type: ignore[override]
+        raise ConfigError(f"{self.prog}: {message} (see {self.prog} --help)")
+
+
+def _cmd_check(args: argparse.Namespace) -> int:
+    from .config import load_config
+    from .datasets import load_dataset
+    from .sweep import output_folder, plan_cells
+
+    cfg = load_config(args.config)
+    data = load_dataset(cfg.data)
+    cells = plan_cells(cfg)
+    print(f"{args.config}: ok")
+    print(f"  data     {data.description} ({len(data.y_train)} training, {len(data.y_val)} validation rows)")
+    print(f"  depths   {', '.join(map(str, cfg.sweep.depths))}; seeds {len(cfg.sweep.seeds)}; "
+          f"learning rates {', '.join(f'{lr:g}' for lr in cfg.train.learning_rate)}")
+    print(f"  cells    {len(cells)} ({sum(len(c.seeds) for c in cells)} seed runs, "
+          f"at most {cfg.train.max_updates} updates each)")
+    print(f"  output   {output_folder(cfg, args.out)}")
+    return 0
+
+
+def _print_depth_table(results: list) -> None:
+    from statistics import median
+
+    by: dict[tuple[float, int], list] = {}
+    for r in results:
+        by.setdefault((r.learning_rate, r.depth), []).append(r)
+    print(f"{'lr':>8} {'depth':>5} {'runs':>4} {'conv':>4} {'cens':>4} {'div':>4} {'median T':>10}")
+    for (lr, depth), rs in sorted(by.items()):
+        conv = [r.iterations for r in rs if r.status == "converged"]
+        cens = sum(r.status == "censored" for r in rs)
+        div = sum(r.status == "diverged" for r in rs)
+        # a median is a value only when fewer than half the runs are censored or diverged
+        med = f"{median(r.iterations if r.status == 'converged' else float('inf') for r in rs):>10.0f}" \
+            if len(conv) > len(rs) / 2 else f"{'> budget':>10}"
+        print(f"{lr:>8g} {depth:>5} {len(rs):>4} {len(conv):>4} {cens:>4} {div:>4} {med}")
+
+
+def _train_sweep(config: Path, args: argparse.Namespace) -> Path:
+    from .config import load_config
+    from .sweep import run_sweep
+
+    cfg = load_config(config)
+    summary = run_sweep(cfg, out=args.out, workers=args.workers, storage=args.storage,
+                        show_progress=not args.quiet)
+    from .fitting import load_runs
+
+    results = load_runs(summary.folder)
+    print(f"{cfg.name}: {summary.n_runs} seed runs stored in {summary.folder} "
+          f"({summary.n_trained} cells trained now, {summary.wall_seconds:.0f} s)")
+    _print_depth_table(results)
+    return summary.folder
+
+
+def _cmd_run(args: argparse.Namespace) -> int:
+    _train_sweep(Path(args.config), args)
+    return 0
+
+
+def _cmd_fit(args: argparse.Namespace) -> int:
+    from .fitting import fit_path, format_summary
+
+    fit, written = fit_path(Path(args.path), Path(args.json) if args.json else None,
+                            save_fraction=args.save_fraction, n_boot=args.bootstrap)
+    print(format_summary(fit))
+    print(f"fit written to {written}")
+    return 0
+
+
+def _cmd_report(args: argparse.Namespace) -> int:
+    from .reporting import write_report
+
+    paths = write_report(Path(args.path), Path(args.out) if args.out else None)
+    print(f"report written to {paths['html']}")
+    return 0
+
+
+def _cmd_demo(args: argparse.Namespace) -> int:
+    if not DEMO_CONFIG.is_file():
+        raise ConfigError(f"the demo sweep {DEMO_CONFIG} is missing; run from a checkout of depthplan")
+    folder = _train_sweep(DEMO_CONFIG, args)
+    try:
+        from .reporting import write_report
+    except ImportError:  # the report module arrives with the report issue
+        return _cmd_fit(argparse.Namespace(path=str(folder), json=None, save_fraction=0.05, bootstrap=400))
+    paths = write_report(folder, None)
+    print(f"demo report: {paths['html']}")
+    return 0
+
+
+def _cmd_worker(args: argparse.Namespace) -> int:
+    import os
+
+    import torch
+
+    from .config import config_from_dict
+    from .storage import STORAGE_ENV, SweepStore
+    from .sweep import work
+
+    url = args.storage or os.environ.get(STORAGE_ENV)
+    if not url:
+        raise ConfigError(f"worker: pass --storage URL or set {STORAGE_ENV}")
+    torch.set_num_threads(1)
+    store = SweepStore(url, args.study)
+    cfg = config_from_dict(store.meta()["config"])
+    n = work(store, cfg)
+    print(f"worker: {n} cells trained and stored in sweep '{args.study}'")
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = _Parser(prog="depthplan", description="Measure how depth changes updates-to-convergence on small "
+                "CPU networks, fit the depth scaling law, and plan the depth of a big training run.")
+    p.add_argument("--version", action="version", version=f"depthplan {__version__}")
+    p.add_argument("-v", "--verbose", action="store_true", help="log what each step does")
+    p.add_argument("-q", "--quiet", action="store_true", help="no progress bar, warnings only")
+    p.add_argument("--debug", action="store_true", help="show the full traceback of an error")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+
+    def add(name: str, fn: Callable[[argparse.Namespace], int], help_: str) -> argparse.ArgumentParser:
+        sp = sub.add_parser(name, help=help_, description=help_)
+        sp.set_defaults(func=fn)
+        return sp
+
+    def train_opts(sp: argparse.ArgumentParser) -> None:
+        sp.add_argument("--out", metavar="DIR", help="results folder (default: results/<name>)")
+        sp.add_argument("--workers", type=int, default=1, metavar="N", help="local worker processes (default 1)")
+        sp.add_argument("--storage", metavar="URL", help="Optuna storage URL (default: $DEPTHPLAN_STORAGE, "
+                        "else a SQLite file in the results folder)")
+
+    sp = add("check", _cmd_check, "check a sweep file and its data without training")
+    sp.add_argument("config", metavar="CONFIG")
+    sp.add_argument("--out", metavar="DIR", help="results folder the run would use")
+    sp = add("run", _cmd_run, "train the sweep (resumes: only missing cells are trained)")
+    sp.add_argument("config", metavar="CONFIG")
+    train_opts(sp)
+    sp = add("fit", _cmd_fit, "fit the depth scaling law to a results folder or a measurements CSV")
+    sp.add_argument("path", metavar="PATH")
+    sp.add_argument("--json", metavar="FILE", help="where to write fit.json")
+    sp.add_argument("--save-fraction", type=float, default=0.05, metavar="F",
+                    help="a layer is worth adding while it saves at least this fraction of updates (default 0.05)")
+    sp.add_argument("--bootstrap", type=int, default=400, metavar="N", help="bootstrap resamples (default 400)")
+    sp = add("report", _cmd_report, "write the hand-over report (Markdown + self-contained HTML)")
+    sp.add_argument("path", metavar="PATH")
+    sp.add_argument("--out", metavar="DIR", help="report folder (default: PATH's folder)")
+    sp = add("demo", _cmd_demo, "train, fit and report the built-in demo sweep")
+    train_opts(sp)
+    sp = add("worker", _cmd_worker, "claim and train cells of a sweep planned in a shared store")
+    sp.add_argument("--storage", metavar="URL", help="storage URL (default: $DEPTHPLAN_STORAGE)")
+    sp.add_argument("--study", required=True, metavar="NAME", help="the sweep's name")
+    return p
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the command line; return the exit status."""
+    parser = build_parser()
+    debug = "--debug" in (sys.argv[1:] if argv is None else argv)
+    try:
+        args = parser.parse_args(argv)
+        level = logging.INFO if args.verbose else logging.WARNING
+        logging.basicConfig(level=level, format="%(levelname)s %(name)s: %(message)s")
+        if not args.command:
+            parser.print_help()
+            return 2
+        return args.func(args)
+    except DepthplanError as exc:
+        if debug:
+            raise
+        print(f"depthplan: {exc}", file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        if debug:
+            raise
+        print("depthplan: interrupted", file=sys.stderr)
+        return 130

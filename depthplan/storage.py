@@ -1,0 +1,262 @@
+"""The sweep store: planned cells as an Optuna study, one trial per cell.
+
+A cell (the seeds of one depth and learning rate) is enqueued as a WAITING
+trial carrying its `CellSpec` as a user attribute. Workers claim a cell by
+moving its trial from WAITING to RUNNING, which the relational storage does
+inside one row-locked transaction, so each claim succeeds exactly once. On
+SQLite, which ignores `SELECT ... FOR UPDATE`, every transaction is opened
+with `BEGIN IMMEDIATE` (one writer at a time) for the same guarantee. A worker
+records a heartbeat while it trains; a trial whose heartbeat goes stale is
+failed and re-enqueued (Optuna's `RetryHeartbeatStaleTrialCallback`). A
+finished cell stores every seed's `RunResult` as a JSON attribute and becomes
+COMPLETE in the same step that checks it is still the worker's, so a cell is
+recorded at most once; results are read back once per cell id.
+
+Never imports torch.
+"""
+from __future__ import annotations
+
+import json
+import logging
+import os
+import threading
+import warnings
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Iterator
+
+from .errors import StoreError
+from .records import CellSpec, RunResult
+
+log = logging.getLogger(__name__)
+
+#: Environment variable that names the storage URL (keeps passwords out of files and logs).
+STORAGE_ENV = "DEPTHPLAN_STORAGE"
+HEARTBEAT_S = 5
+GRACE_S = 20
+
+
+def redact(url: str) -> str:
+    """The URL with any password replaced, for messages and logs."""
+    if "://" not in url or "@" not in url:
+        return url
+    scheme, rest = url.split("://", 1)
+    auth, host = rest.rsplit("@", 1)
+    user = auth.split(":", 1)[0]
+    return f"{scheme}://{user}:***@{host}"
+
+
+def local_url(folder: Path) -> str:
+    return f"sqlite:///{(Path(folder) / 'store.db').resolve()}"
+
+
+def _quiet_optuna() -> Any:
+    import optuna
+
+    optuna.logging.set_verbosity(optuna.logging.WARNING)
+    return optuna
+
+
+def _rdb(url: str) -> Any:
+    """An Optuna RDBStorage with heartbeats and retry, safe as a queue on SQLite too."""
+    optuna = _quiet_optuna()
+    from optuna.exceptions import ExperimentalWarning
+
+    kwargs: dict[str, Any] = {}
+    if url.startswith("sqlite"):
+        # let sqlite3 emit no BEGIN of its own; we open every transaction as BEGIN IMMEDIATE below
+        kwargs["connect_args"] = {"isolation_level": None, "timeout": 120}
+    else:
+        kwargs["pool_pre_ping"] = True
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ExperimentalWarning)
+        try:
+            storage = optuna.storages.RDBStorage(
+                url, engine_kwargs=kwargs, heartbeat_interval=HEARTBEAT_S, grace_period=GRACE_S,
+                heartbeat_stale_trial_callback=optuna.storages.RetryHeartbeatStaleTrialCallback())
+        except Exception as exc:  # sqlalchemy/driver errors vary by backend
+            first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+            raise StoreError(f"cannot open the sweep store at {redact(url)}: {first}") from None
+    if url.startswith("sqlite"):
+        from sqlalchemy import event
+
+        @event.listens_for(storage.engine, "begin")
+        def _begin_immediate(conn: Any) -> None:
+            conn.exec_driver_sql("BEGIN IMMEDIATE")
+
+        storage.engine.dispose()
+    return storage
+
+
+@dataclass
+class Claim:
+    """A cell this worker holds: train it, then `record` or `release` it."""
+
+    trial_id: int
+    number: int
+    spec: CellSpec
+
+
+class SweepStore:
+    """Planned, running and finished cells of one sweep."""
+
+    def __init__(self, url: str, study_name: str, *, create: bool = False) -> None:
+        optuna = _quiet_optuna()
+        self.url, self.name = url, study_name
+        self.storage = _rdb(url)
+        if create:
+            self.study = optuna.create_study(study_name=study_name, storage=self.storage,
+                                             load_if_exists=True, direction="minimize")
+        else:
+            try:
+                self.study = optuna.load_study(study_name=study_name, storage=self.storage)
+            except KeyError:
+                names = [s.study_name for s in optuna.get_all_study_summaries(self.storage)]
+                hint = f" (studies there: {', '.join(names)})" if names else ""
+                raise StoreError(f"no sweep named '{study_name}' in {redact(url)}{hint}") from None
+        self._id = self.study._study_id
+
+    # ---------------------------------------------------------------- sweep metadata
+    def meta(self) -> dict[str, Any]:
+        return dict(self.study.user_attrs)
+
+    def set_meta(self, key: str, value: Any) -> None:
+        self.study.set_user_attr(key, value)
+
+    # ---------------------------------------------------------------- planning
+    def _trials(self, states: tuple | None = None) -> list[Any]:
+        return self.storage.get_all_trials(self._id, deepcopy=False, states=states)
+
+    def plan(self, cells: list[CellSpec]) -> int:
+        """Enqueue every cell that is neither done, waiting nor running; return how many."""
+        from optuna.trial import TrialState
+
+        live = (TrialState.WAITING, TrialState.RUNNING, TrialState.COMPLETE)
+        have = {t.user_attrs.get("cell_id") for t in self._trials(live)}
+        added = 0
+        for spec in cells:
+            if spec.cell_id in have:
+                continue
+            self.study.enqueue_trial({"depth": spec.depth},
+                                     user_attrs={"cell_id": spec.cell_id, "cell": spec.to_dict()})
+            have.add(spec.cell_id)
+            added += 1
+        return added
+
+    def counts(self) -> dict[str, int]:
+        """Cells by state: waiting, running, complete, failed."""
+        out = {"waiting": 0, "running": 0, "complete": 0, "failed": 0}
+        for t in self._trials():
+            key = t.state.name.lower()
+            if key == "fail":
+                key = "failed"
+            if key in out:
+                out[key] += 1
+        return out
+
+    # ---------------------------------------------------------------- working
+    def reap_stale(self) -> None:
+        """Fail and re-enqueue cells whose worker stopped sending heartbeats."""
+        import optuna
+        from optuna.exceptions import ExperimentalWarning
+
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", ExperimentalWarning)
+            optuna.storages.fail_stale_trials(self.study)
+
+    def claim(self) -> Claim | None:
+        """Take one waiting cell, or None when none is waiting."""
+        from optuna.exceptions import UpdateFinishedTrialError
+        from optuna.trial import TrialState
+
+        for t in self._trials((TrialState.WAITING,)):
+            try:
+                ok = self.storage.set_trial_state_values(t._trial_id, state=TrialState.RUNNING)
+            except UpdateFinishedTrialError:
+                ok = False
+            if ok:
+                self.storage.record_heartbeat(t._trial_id)
+                return Claim(t._trial_id, t.number, CellSpec.from_dict(t.user_attrs["cell"]))
+        return None
+
+    def record(self, claim: Claim, results: list[RunResult]) -> bool:
+        """Store a finished cell; False if it was taken from us meanwhile (then it runs elsewhere)."""
+        from optuna.exceptions import UpdateFinishedTrialError
+        from optuna.trial import TrialState
+
+        its = sorted(r.iterations for r in results)
+        try:
+            self.storage.set_trial_user_attr(claim.trial_id, "runs", [r.to_dict() for r in results])
+            return bool(self.storage.set_trial_state_values(
+                claim.trial_id, state=TrialState.COMPLETE, values=[float(its[len(its) // 2])]))
+        except UpdateFinishedTrialError:
+            log.warning("cell %s was failed by another worker meanwhile; its result is discarded", claim.spec.cell_id)
+            return False
+
+    def release(self, claim: Claim, reason: str) -> None:
+        """Give a cell back after an error or interruption: fail this trial, enqueue the cell again."""
+        from optuna.exceptions import UpdateFinishedTrialError
+        from optuna.trial import TrialState
+
+        try:
+            self.storage.set_trial_system_attr(claim.trial_id, "depthplan_failure", reason[:2000])
+            failed = self.storage.set_trial_state_values(claim.trial_id, state=TrialState.FAIL)
+        except UpdateFinishedTrialError:
+            return
+        if failed:
+            self.plan([claim.spec])
+
+    # ---------------------------------------------------------------- reading
+    def results(self) -> list[RunResult]:
+        """Every stored seed run, once per cell id (the first completed trial wins)."""
+        from optuna.trial import TrialState
+
+        seen: set[str] = set()
+        out: list[RunResult] = []
+        for t in sorted(self._trials((TrialState.COMPLETE,)), key=lambda t: t.number):
+            cid = t.user_attrs.get("cell_id")
+            if cid in seen or "runs" not in t.user_attrs:
+                continue
+            seen.add(cid)
+            out.extend(RunResult.from_dict(d) for d in t.user_attrs["runs"])
+        return out
+
+    def completed_cells(self) -> list[tuple[str, int]]:
+        """(cell id, trial number) of every COMPLETE trial, duplicates included (for checks)."""
+        from optuna.trial import TrialState
+
+        return [(t.user_attrs.get("cell_id"), t.number) for t in self._trials((TrialState.COMPLETE,))]
+
+
+class Heartbeat:
+    """Background thread that keeps a claimed cell's heartbeat fresh while it trains."""
+
+    def __init__(self, store: SweepStore, trial_id: int) -> None:
+        self.store, self.trial_id = store, trial_id
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._beat, daemon=True)
+
+    def _beat(self) -> None:
+        while not self._stop.wait(HEARTBEAT_S):
+            try:
+                self.store.storage.record_heartbeat(self.trial_id)
+            except Exception:  # a missed beat is retried; the grace period covers a few
+                log.debug("heartbeat for trial %s failed", self.trial_id, exc_info=True)
+
+    def __enter__(self) -> "Heartbeat":
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        self._stop.set()
+        self._thread.join()
+
+
+def resolve_url(option: str | None, config_value: str | None, folder: Path) -> str:
+    """Storage URL: --storage, then $DEPTHPLAN_STORAGE, then the config, then the local SQLite file."""
+    return option or os.environ.get(STORAGE_ENV) or config_value or local_url(folder)
+
+
+def iter_json_lines(results: list[RunResult]) -> Iterator[str]:
+    for r in results:
+        yield json.dumps(r.to_dict(), allow_nan=False)
