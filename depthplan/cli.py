@@ -23,7 +23,7 @@ class _Parser(argparse.ArgumentParser):
     """argparse that reports a usage mistake as one line and exit status 2."""
 
     def error(self, message: str) -> None:  # type: ignore[override]
-        raise ConfigError(f"{self.prog}: {message} (see {self.prog} --help)")
+        raise ConfigError(f"{message} (see {self.prog} --help)")
 
 
 def _cmd_check(args: argparse.Namespace) -> int:
@@ -134,6 +134,10 @@ def _cmd_worker(args: argparse.Namespace) -> int:
 
 
 def build_parser() -> argparse.ArgumentParser:
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("-v", "--verbose", action="store_true", default=argparse.SUPPRESS, help="log what each step does")
+    common.add_argument("-q", "--quiet", action="store_true", default=argparse.SUPPRESS, help="no progress bar, warnings only")
+    common.add_argument("--debug", action="store_true", default=argparse.SUPPRESS, help="show the full traceback of an error")
     p = _Parser(prog="depthplan", description="Measure how depth changes updates-to-convergence on small "
                 "CPU networks, fit the depth scaling law, and plan the depth of a big training run.")
     p.add_argument("--version", action="version", version=f"depthplan {__version__}")
@@ -143,7 +147,7 @@ def build_parser() -> argparse.ArgumentParser:
     sub = p.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
 
     def add(name: str, fn: Callable[[argparse.Namespace], int], help_: str) -> argparse.ArgumentParser:
-        sp = sub.add_parser(name, help=help_, description=help_)
+        sp = sub.add_parser(name, help=help_, description=help_, parents=[common])
         sp.set_defaults(func=fn)
         return sp
 
@@ -198,3 +202,8 @@ def main(argv: Sequence[str] | None = None) -> int:
             raise
         print("depthplan: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:  # output piped into `head` and the like
+        import os
+
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 0

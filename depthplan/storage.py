@@ -32,8 +32,9 @@ log = logging.getLogger(__name__)
 
 #: Environment variable that names the storage URL (keeps passwords out of files and logs).
 STORAGE_ENV = "DEPTHPLAN_STORAGE"
-HEARTBEAT_S = 5
-GRACE_S = 20
+#: Seconds between a worker's heartbeats, and of silence after which its cell is given to another.
+HEARTBEAT_S = int(os.environ.get("DEPTHPLAN_HEARTBEAT_S", "5"))
+GRACE_S = int(os.environ.get("DEPTHPLAN_GRACE_S", "20"))
 
 
 def redact(url: str) -> str:

@@ -102,7 +102,7 @@ def open_sweep(cfg: SweepFile, folder: Path, url: str) -> SweepStore:
                                {k: v for k, v in cfg.to_dict().items() if k not in ("output", "name")})
         what = f" (changed: {', '.join(changed[:5])})" if changed else ""
         raise StoreError(f"{folder} already holds sweep '{cfg.name}' run with a different config{what}; "
-                         "pass --out DIR to start a new sweep there, or restore the old settings to finish it")
+                         "pass --out DIR to run the changed sweep in a new folder, or restore the old settings to finish this one")
     return store
 
 

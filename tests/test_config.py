@@ -1,0 +1,119 @@
+"""Sweep-file checking: every key family, its wording, and the minimal file of the core issue."""
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+
+from depthplan.config import config_from_dict, dump_config, load_config
+from depthplan.errors import ConfigError
+
+MINIMAL = """
+name: kiln-depth
+data:
+  source: csv            # synthetic | digits | csv | npz
+  path: readings.csv
+  label: outcome
+  validation_fraction: 0.2
+model:
+  width: 32
+  activation: tanh
+  init: he
+sweep:
+  depths: [1, 2, 3, 4, 6, 8, 12]
+  seeds: 5
+train:
+  optimizer: sgd
+  learning_rate: 0.05
+  batch_size: 32
+  max_updates: 20000
+  eval_every: 20
+  converge_when:
+    train_loss_below: 0.1
+"""
+
+
+def test_minimal_file_is_accepted_as_written(write_yaml, tmp_path: Path) -> None:
+    (tmp_path / "readings.csv").write_text("a,b,outcome\n1,2,x\n3,4,y\n")
+    cfg = load_config(write_yaml(MINIMAL))
+    assert cfg.name == "kiln-depth"
+    assert cfg.data.path == str((tmp_path / "readings.csv").resolve())   # relative to the YAML file
+    assert cfg.sweep.depths == (1, 2, 3, 4, 6, 8, 12)
+    assert cfg.sweep.seeds == (0, 1, 2, 3, 4)
+    assert cfg.train.learning_rate == (0.05,)
+    assert cfg.train.converge_when.train_loss_below == 0.1
+    assert cfg.model.widths(3) == (32, 32, 32)
+
+
+def test_defaults_round_trip_through_the_resolved_config(tiny_config: Path) -> None:
+    import yaml
+
+    cfg = load_config(tiny_config)
+    again = config_from_dict(yaml.safe_load(dump_config(cfg)))
+    assert again.fingerprint() == cfg.fingerprint()
+    assert again.to_dict() == cfg.to_dict()
+
+
+@pytest.mark.parametrize("patch, pattern", [
+    ("sweep: {depths: [1, -2, 3]}", r"sweep\.depths\[1\]: must be a positive integer, got -2"),
+    ("sweep: {depths: [1, 1]}", r"sweep\.depths: must not repeat"),
+    ("sweep: {depths: 3}", r"sweep\.depths: must be a non-empty list"),
+    ("sweep: {seeds: 0}", r"sweep\.seeds: must be a positive integer, got 0"),
+    ("sweep: {seeds: [0, -1]}", r"sweep\.seeds\[1\]: must be an integer >= 0"),
+    ("sweep: {seedz: 3}", r"unknown key 'seedz' in sweep \(did you mean 'seeds'\?\)"),
+    ("train: {learning_rate: -0.01}", r"train\.learning_rate: must be a number > 0, got -0\.01"),
+    ("train: {learning_rate: [0.1, 'fast']}", r"train\.learning_rate\[1\]: must be a number"),
+    ("train: {max_update: 10}", r"unknown key 'max_update' in train \(did you mean 'max_updates'\?\)"),
+    ("train: {batch_size: 1.5}", r"train\.batch_size: must be a positive integer, got 1\.5"),
+    ("train: {optimizer: lbfgs}", r"train\.optimizer: must be one of sgd, adam"),
+    ("train: {momentum: 1.0}", r"train\.momentum: must be a number >= 0 and < 1"),
+    ("train: {max_updates: 10, eval_every: 20}", r"train\.eval_every: must not exceed"),
+    ("train: {converge_when: {}}", r"train\.converge_when: must set at least one"),
+    ("train: {converge_when: {train_acuracy_at_least: 0.9}}", r"did you mean 'train_accuracy_at_least'"),
+    ("train: {converge_when: {validation_accuracy_at_least: 1.5}}", r"validation_accuracy_at_least: must be a number > 0 and <= 1"),
+    ("model: {activation: swish}", r"model\.activation: must be one of tanh, relu, gelu, sigmoid"),
+    ("model: {init: kaimin}", r"model\.init: .*did you mean 'kaiming'"),
+    ("model: {width: [32, 0]}", r"model\.width\[1\]: must be a positive integer"),
+    ("model: {width: [32]}", r"model\.width: lists 1 widths but sweep\.depths goes to"),
+    ("model: {init_gain: 0}", r"model\.init_gain: must be a number > 0"),
+    ("data: {source: parquet}", r"data\.source: must be one of"),
+    ("data: {source: csv, label: y}", r"data\.path: is required when data\.source is csv"),
+    ("data: {source: csv, path: nowhere.csv, label: y}", r"data\.path: no such file"),
+    ("data: {validation_fraction: 0.95}", r"data\.validation_fraction: must be a number >= 0 and <= 0\.9"),
+    ("probes: {snr: maybe}", r"probes\.snr: must be true or false"),
+    ("output: {storage: 'postgresql://u:secret@db/x'}", r"output\.storage: must not hold credentials"),
+    ("colour: red", r"unknown key 'colour'"),
+])
+def test_bad_values_name_their_key_path(write_yaml, patch: str, pattern: str) -> None:
+    with pytest.raises(ConfigError, match=pattern):
+        load_config(write_yaml("name: t\n" + patch + "\n"))
+
+
+def test_every_problem_is_collected_into_one_line(write_yaml) -> None:
+    with pytest.raises(ConfigError) as info:
+        load_config(write_yaml("name: t\nsweep: {depths: [0], seeds: -1}\ntrain: {learning_rate: 0}\n"))
+    msg = str(info.value)
+    assert msg.startswith("3 problems in sweep.yaml")
+    assert "\n" not in msg
+
+
+def test_not_yaml_names_line_and_column(write_yaml) -> None:
+    with pytest.raises(ConfigError, match=r"sweep\.yaml: line 3, column 1: not valid YAML"):
+        load_config(write_yaml("name: t\nsweep: {depths: [1, 2\n"))
+
+
+def test_missing_file_and_missing_name(write_yaml, tmp_path: Path) -> None:
+    with pytest.raises(ConfigError, match="no such sweep file"):
+        load_config(tmp_path / "absent.yaml")
+    with pytest.raises(ConfigError, match=r"name: is required"):
+        load_config(write_yaml("sweep: {depths: [1]}\n"))
+    with pytest.raises(ConfigError, match="must be a YAML mapping"):
+        load_config(write_yaml("- 1\n- 2\n"))
+
+
+def test_fingerprint_follows_what_changes_a_measurement(write_yaml) -> None:
+    a = load_config(write_yaml("name: a\ntrain: {learning_rate: 0.1}\n", "a.yaml"))
+    b = load_config(write_yaml("name: b\ntrain: {learning_rate: 0.1}\noutput: {dir: elsewhere}\n", "b.yaml"))
+    c = load_config(write_yaml("name: a\ntrain: {learning_rate: 0.2}\n", "c.yaml"))
+    assert a.fingerprint() == b.fingerprint()      # name and output folder change no number
+    assert a.fingerprint() != c.fingerprint()
