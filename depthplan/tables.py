@@ -1,0 +1,321 @@
+"""Read measured runs for fitting: a results folder or a user's measurements table.
+
+Two inputs, one code path. A results folder written by `depthplan run` holds
+`runs.jsonl` (one `RunResult.to_dict()` object per line, with loss curves and
+probes) and/or `runs.csv` (columns `records.RUN_COLUMNS`), and optionally
+`sweep.json` (`eval_every`, `max_updates`, `name`). A measurements table is a
+CSV file that a user wrote about their own jobs:
+
+    depth,iterations[,seed][,status][,seconds_per_update][,learning_rate][,width][,eval_every]
+
+`status` is one of `converged|censored|diverged` (empty means converged); a
+censored row's `iterations` is the budget it ran out of. `runs.csv` is read by
+the same table reader, so both kinds of CSV are checked the same way. Every
+problem is a `DataError` naming the file, line and column, for example
+`timings.csv line 4, column iterations: must be a positive number, got 'abc'`.
+Columns not listed here are ignored unless their name is close to one that is
+(then it is taken for a typo and refused).
+"""
+from __future__ import annotations
+
+import csv
+import difflib
+import json
+import logging
+import math
+from dataclasses import fields
+from pathlib import Path
+from typing import Any, Callable
+
+from .errors import DataError
+from .records import RUN_COLUMNS, STATUSES, RunResult
+
+log = logging.getLogger(__name__)
+
+REQUIRED_COLUMNS = ("depth", "iterations")
+_FIELD_NAMES = {f.name for f in fields(RunResult)}
+
+
+def _positive_int(text: str) -> int:
+    value = float(text)
+    if not (math.isfinite(value) and value >= 1 and value == int(value)):
+        raise ValueError("must be a whole number >= 1")
+    return int(value)
+
+
+def _int(text: str) -> int:
+    value = float(text)
+    if not (math.isfinite(value) and value == int(value)):
+        raise ValueError("must be a whole number")
+    return int(value)
+
+
+def _positive_number(text: str) -> float:
+    value = float(text)
+    if not (math.isfinite(value) and value > 0):
+        raise ValueError("must be a positive number")
+    return value
+
+
+def _nonnegative_number(text: str) -> float:
+    value = float(text)
+    if not (math.isfinite(value) and value >= 0):
+        raise ValueError("must be a number >= 0")
+    return value
+
+
+def _number(text: str) -> float:
+    return float(text)   # NaN and inf allowed: final losses of diverged runs
+
+
+def _status(text: str) -> str:
+    value = text.strip().lower()
+    if value not in STATUSES:
+        raise ValueError(f"must be one of {'|'.join(STATUSES)}")
+    return value
+
+
+def _lr_mode(text: str) -> str:
+    value = text.strip().lower()
+    if value not in ("fixed", "tuned"):
+        raise ValueError("must be fixed or tuned")
+    return value
+
+
+def _iterations(text: str) -> int | float:
+    value = _positive_number(text)
+    return int(value) if value == int(value) else value
+
+
+# column -> (parser, message on failure, value when the cell is empty or absent)
+_Spec = tuple[Callable[[str], Any], str, Any]
+COLUMN_SPECS: dict[str, _Spec] = {
+    "depth": (_positive_int, "must be a whole number >= 1", None),
+    "iterations": (_iterations, "must be a positive number", None),
+    "seed": (_int, "must be a whole number", None),
+    "status": (_status, f"must be one of {'|'.join(STATUSES)}", "converged"),
+    "seconds_per_update": (_positive_number, "must be a positive number", math.nan),
+    "learning_rate": (_positive_number, "must be a positive number", math.nan),
+    "width": (_positive_int, "must be a whole number >= 1", 0),
+    "eval_every": (_positive_int, "must be a whole number >= 1", None),
+    "lr_mode": (_lr_mode, "must be fixed or tuned", "fixed"),
+    "wall_seconds": (_nonnegative_number, "must be a number >= 0", math.nan),
+    "final_train_loss": (_number, "must be a number", math.nan),
+    "final_train_accuracy": (_number, "must be a number", math.nan),
+    "validation_accuracy": (_number, "must be a number", math.nan),
+    "n_params": (_int, "must be a whole number", 0),
+    "activation": (str, "", ""),
+    "init": (str, "", ""),
+    "optimizer": (str, "", "sgd"),
+    "cell_id": (str, "", ""),
+}
+assert set(RUN_COLUMNS) <= set(COLUMN_SPECS)
+
+
+def _cell_error(name: str, line: int, column: str, message: str, raw: str) -> DataError:
+    return DataError(f"{name} line {line}, column {column}: {message}, got {raw!r}")
+
+
+def read_table(path: Path) -> list[RunResult]:
+    """Read a measurements table (or a `runs.csv`) into run records.
+
+    Args:
+        path: CSV file with at least the columns `depth` and `iterations`.
+
+    Returns:
+        One `RunResult` per data row; fields the table does not carry are NaN,
+        0 or "". A row's `eval_every`, when given, goes into `extra`.
+
+    Raises:
+        DataError: the file is missing, unreadable, lacks a required column, or
+            a cell is not what its column needs (message names line and column).
+    """
+    path = Path(path)
+    name = str(path)
+    if not path.is_file():
+        raise DataError(f"{name}: no such file")
+    try:
+        with path.open(newline="", encoding="utf-8-sig") as fh:
+            reader = csv.reader(fh)
+            header = next(reader, None)
+            if header is None:
+                raise DataError(f"{name}: empty file; expected a header line with columns "
+                                f"{','.join(REQUIRED_COLUMNS)}")
+            columns = [h.strip().lower() for h in header]
+            _check_header(name, columns)
+            rows = []
+            for cells in reader:
+                if not any(c.strip() for c in cells):
+                    continue
+                rows.append(_parse_row(name, reader.line_num, columns, cells))
+    except UnicodeDecodeError:
+        raise DataError(f"{name}: not a text CSV file (it is not UTF-8)") from None
+    except csv.Error as exc:
+        raise DataError(f"{name}: not a readable CSV file ({exc})") from None
+    if not rows:
+        raise DataError(f"{name}: no data rows under the header")
+    return _with_default_seeds(rows)
+
+
+def _check_header(name: str, columns: list[str]) -> None:
+    missing = [c for c in REQUIRED_COLUMNS if c not in columns]
+    if missing:
+        raise DataError(f"{name} line 1: missing column{'s' if len(missing) > 1 else ''} "
+                        f"{', '.join(missing)} (a table needs {','.join(REQUIRED_COLUMNS)}; "
+                        f"it has {','.join(columns) or 'none'})")
+    seen: set[str] = set()
+    for col in columns:
+        if col in seen:
+            raise DataError(f"{name} line 1: column {col} appears twice")
+        seen.add(col)
+        if col not in COLUMN_SPECS:
+            close = difflib.get_close_matches(col, list(COLUMN_SPECS), n=1, cutoff=0.8)
+            if close:
+                raise DataError(f"{name} line 1: unknown column {col!r} "
+                                f"(did you mean {close[0]!r}?)")
+
+
+def _parse_row(name: str, line: int, columns: list[str], cells: list[str]) -> dict[str, Any]:
+    if len(cells) > len(columns) and any(c.strip() for c in cells[len(columns):]):
+        raise DataError(f"{name} line {line}: {len(cells)} fields but the header has "
+                        f"{len(columns)}")
+    row: dict[str, Any] = {}
+    for col, (parse, message, default) in COLUMN_SPECS.items():
+        if col not in columns:
+            row[col] = default
+            continue
+        i = columns.index(col)
+        raw = cells[i].strip() if i < len(cells) else ""
+        if raw == "":
+            if col in REQUIRED_COLUMNS:
+                raise _cell_error(name, line, col, f"{message} (the cell is empty)", raw)
+            row[col] = default
+            continue
+        try:
+            row[col] = parse(raw)
+        except ValueError:
+            raise _cell_error(name, line, col, message, raw) from None
+    return row
+
+
+def _with_default_seeds(rows: list[dict[str, Any]]) -> list[RunResult]:
+    """Turn parsed rows into records, numbering missing seeds per depth from 0."""
+    next_seed: dict[int, int] = {}
+    runs = []
+    for row in rows:
+        if row["seed"] is None:
+            row["seed"] = next_seed.get(row["depth"], 0)
+        next_seed[row["depth"]] = max(next_seed.get(row["depth"], 0), row["seed"] + 1)
+        eval_every = row.pop("eval_every")
+        kw = {k: v for k, v in row.items() if k in _FIELD_NAMES}
+        kw["extra"] = {} if eval_every is None else {"eval_every": eval_every}
+        runs.append(RunResult(**kw))
+    return runs
+
+
+def read_jsonl(path: Path) -> list[RunResult]:
+    """Read `runs.jsonl`: one `RunResult.to_dict()` object per line.
+
+    A torn last line (a writer stopped mid-record) is skipped with a log
+    message; a bad line anywhere else is a `DataError`.
+    """
+    path = Path(path)
+    lines = path.read_text(encoding="utf-8").splitlines()
+    runs = []
+    for number, text in enumerate(lines, start=1):
+        if not text.strip():
+            continue
+        try:
+            d = json.loads(text)
+            if not isinstance(d, dict):
+                raise ValueError("not a JSON object")
+            run = RunResult.from_dict(d)
+        except (ValueError, TypeError) as exc:
+            if number == len(lines):
+                log.warning("%s line %d: skipping a torn last record (%s)", path, number, exc)
+                continue
+            raise DataError(f"{path} line {number}: not a run record ({exc})") from None
+        _check_record(path, number, run)
+        runs.append(run)
+    return runs
+
+
+def _check_record(path: Path, number: int, run: RunResult) -> None:
+    checks = (
+        ("depth", isinstance(run.depth, int) and run.depth >= 1, "must be a whole number >= 1"),
+        ("iterations", isinstance(run.iterations, (int, float)) and run.iterations > 0,
+         "must be a positive number"),
+    )
+    for key, ok, message in checks:
+        if not ok:
+            raise DataError(f"{path} line {number}, field {key}: {message}, "
+                            f"got {getattr(run, key)!r}")
+
+
+def read_sweep_info(folder: Path) -> dict[str, Any]:
+    """The `sweep.json` of a results folder as a dict ({} when there is none)."""
+    path = Path(folder) / "sweep.json"
+    if not path.is_file():
+        return {}
+    try:
+        info = json.loads(path.read_text(encoding="utf-8"))
+    except ValueError as exc:
+        raise DataError(f"{path}: not valid JSON ({exc})") from None
+    return info if isinstance(info, dict) else {}
+
+
+def load_runs(path: Path) -> list[RunResult]:
+    """Load the runs to fit from a results folder or a measurements table.
+
+    Args:
+        path: a results folder (reads `runs.jsonl`, else `runs.csv`) or a CSV
+            measurements table.
+
+    Returns:
+        The run records, in file order.
+
+    Raises:
+        DataError: the path does not exist, a file is malformed, or a results
+            folder holds no finished runs yet.
+
+    Example:
+        >>> runs = load_runs(Path("results/digits"))  # doctest: +SKIP
+    """
+    path = Path(path)
+    if not path.exists():
+        raise DataError(f"{path}: no such file or folder")
+    if path.is_dir():
+        runs: list[RunResult] = []
+        if (path / "runs.jsonl").is_file():
+            runs = read_jsonl(path / "runs.jsonl")
+        elif (path / "runs.csv").is_file():
+            try:
+                runs = read_table(path / "runs.csv")
+            except DataError as exc:
+                if "no data rows" not in str(exc):
+                    raise
+        if not runs:
+            raise DataError(f"{path}: no finished runs yet; run `depthplan run CONFIG` first")
+        return runs
+    return read_table(path)
+
+
+def eval_interval(runs: list[RunResult], sweep_info: dict[str, Any] | None = None) -> int | None:
+    """The coarsest evaluation interval the runs were measured with, if known.
+
+    Taken from `sweep.json`'s `eval_every`, else the runs' `extra["eval_every"]`
+    (table column), else the spacing of their recorded `eval_steps`.
+    """
+    if sweep_info and isinstance(sweep_info.get("eval_every"), (int, float)):
+        return int(sweep_info["eval_every"])
+    found = []
+    for r in runs:
+        if isinstance(r.extra.get("eval_every"), (int, float)):
+            found.append(int(r.extra["eval_every"]))
+        elif len(r.eval_steps) >= 2:
+            steps = sorted(int(s) for s in r.eval_steps if isinstance(s, (int, float))
+                           and math.isfinite(s))
+            gaps = [b - a for a, b in zip(steps, steps[1:]) if b > a]
+            if gaps:
+                found.append(max(gaps))
+    return max(found) if found else None
