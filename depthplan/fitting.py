@@ -745,8 +745,9 @@ def _reversal_block(d: _Arrays, depths: list[int], n_boot: int,
 
 
 def _planning_block(model: str, point: np.ndarray, draws: np.ndarray, depths: list[int],
-                    per_depth: list[dict[str, Any]], save_fraction: float,
-                    gain: bool) -> dict[str, Any]:
+                    per_depth: list[dict[str, Any]], save_fraction: float, gain: bool,
+                    rise_after: int | None = None) -> dict[str, Any]:
+    """Planning figures; `rise_after` caps the recommendation where T turns up unconfirmed."""
     lo, hi = depths[0], depths[-1]
 
     def figure(point_value: float, boot: np.ndarray) -> dict[str, Any]:
@@ -768,7 +769,8 @@ def _planning_block(model: str, point: np.ndarray, draws: np.ndarray, depths: li
                          compute_optimal_depth(model, draws[ok], cost))
         optimal["cost_model"] = {"seconds_intercept": cost[0], "seconds_per_layer": cost[1]}
         optimal["note"] = "" if optimal["depth"] is not None else (
-            f"total time keeps falling up to depth {_K_MAX}")
+            f"under the fitted law, T times seconds per update keeps falling up to "
+            f"{_K_MAX} layers")
     if not gain:
         worth = {"depth": lo, "ci": None, "extrapolated": False}
         optimal.update(depth=None, ci=None, extrapolated=False,
@@ -780,6 +782,9 @@ def _planning_block(model: str, point: np.ndarray, draws: np.ndarray, depths: li
                    (optimal["depth"], "compute-optimal depth (measured seconds per update)")]
         options = [(k, b) for k, b in options if k is not None]
         rec, basis = min(options) if options else (None, "no figure could be computed")
+        if rise_after is not None and (rec is None or rec > rise_after):
+            rec, basis = rise_after, (f"depth of the lowest measured T (T turns up past it; "
+                                      f"the fitted law alone would say {rec or 'deeper'})")
     return {"save_fraction": save_fraction, "model": model,
             "last_depth_worth_adding": worth, "compute_optimal_depth": optimal,
             "recommended_depth": rec, "recommended_basis": basis,
@@ -884,7 +889,9 @@ def _fit_group(runs: list[RunResult], *, save_fraction: float, n_boot: int, seed
     else:
         model, point = "power_law", np.array([pl["intercept"], pl["slope"]])
         draws, k_lo, k_hi = pl_draws, span[0], span[-1]
-    planning = _planning_block(model, point, draws, depths, per_depth, save_fraction, gain)
+    rise_after = span[-1] if reversal["rise_suspected"] else None
+    planning = _planning_block(model, point, draws, depths, per_depth, save_fraction, gain,
+                               rise_after)
     diffusion = diffusion_summary(runs)
     if diffusion is not None:
         diffusion["alpha"] = pl["alpha"]
@@ -937,7 +944,7 @@ def _group_warnings(fit: dict[str, Any], d: _Arrays, eval_every: int | None) -> 
         out.append(f"the slope rests on {len(pl['depths_used'])} depths only")
     fewest = min(r["converged"] + r["censored"] for r in rows)
     if fewest < 3:
-        out.append(f"as few as {fewest} finished run{'s' * (fewest != 1)} at a depth: intervals "
+        out.append(f"as few as {_plural(fewest, 'finished run')} at a depth: intervals "
                    "are rough; use three seeds or more per depth")
     if pl["ci_method"] == "residuals":
         out.append("some depths have a single run: intervals resample residuals, not seeds")
@@ -950,7 +957,7 @@ def _group_warnings(fit: dict[str, Any], d: _Arrays, eval_every: int | None) -> 
         out.append(f"{100 * d.C.mean():.0f} % of the runs hit the budget; raise max_updates")
     n_div = sum(r["diverged"] for r in rows)
     if n_div:
-        out.append(f"{n_div} run{'s' * (n_div != 1)} diverged and {'are' if n_div > 1 else 'is'} "
+        out.append(f"{_plural(n_div, 'run')} diverged and {'are' if n_div > 1 else 'is'} "
                    "left out of the fit; lower the learning rate")
     if rev["status"] == "observed":
         ci = rev["depth_ci"] or [depths[0], depths[-1]]
@@ -964,7 +971,8 @@ def _group_warnings(fit: dict[str, Any], d: _Arrays, eval_every: int | None) -> 
             out.append(f"the segmented fit (K = {rev['depth']:.1f}) and the smooth two-term model "
                        f"(K = {rev['smooth_depth']:.1f}) disagree by more than one layer")
     if rev["rise_suspected"]:
-        out.append(f"{rev['note']}; sweep deeper and add seeds before trusting a reversal")
+        out.append(f"a rise past K = {fit['power_law']['depths_used'][-1]} is hinted but not "
+                   "established; sweep deeper and add seeds before trusting a reversal")
     finished = [(r["median"], r["depth"]) for r in rows if r["median"] is not None]
     if eval_every and finished:
         t_low, k_low = min(finished)
@@ -1097,11 +1105,15 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
     return _clean(result)
 
 
+def _plural(n: int, noun: str) -> str:
+    return f"{n} {noun}{'s' * (n != 1)}"
+
+
 def _describe(group: dict[str, Any]) -> str:
     if group["lr_mode"] == "tuned":
         return "learning rate tuned per depth"
     if group["learning_rate"] is None:
-        return "fixed learning rate"
+        return "learning rate not recorded"
     return f"fixed learning rate {group['learning_rate']:g}"
 
 
@@ -1195,8 +1207,8 @@ def format_summary(fit: dict[str, Any]) -> str:
     used = pl["depths_used"]
     lines.append(f"Depth law T ~ K^s over depths {used[0]}-{used[-1]}: s = {pl['slope']:.2f} "
                  f"+/- {pl['slope_se']:.2f}{_ci_text(pl['slope_ci'])}, R^2 = {pl['r2']:.2f}"
-                 + (f", {pl['n_censored']} censored runs as lower bounds" if pl["n_censored"]
-                    else "") + ".")
+                 + (f", {pl['n_censored']} censored (used as lower bounds)"
+                    if pl["n_censored"] else "") + ".")
     without = pl.get("without_shallowest")
     if without:
         lines.append(f"Without the shallowest depth: s = {without['slope']:.2f}"

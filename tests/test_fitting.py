@@ -222,6 +222,9 @@ def test_a_single_point_past_the_minimum_is_never_a_reversal():
     assert rev["rise_suspected"]
     assert fit["power_law"]["depths_used"] == list(range(1, 9))
     assert any("not established" in w for w in fit["warnings"])
+    # the law alone would say 20 layers; T turned up past 8, so no deeper advice than that
+    assert fit["planning"]["last_depth_worth_adding"]["depth"] == pytest.approx(20, abs=3)
+    assert fit["planning"]["recommended_depth"] == 8
 
 
 def test_still_falling_at_the_deepest_depth_is_beyond_range():
