@@ -45,20 +45,22 @@ def _cmd_check(args: argparse.Namespace) -> int:
 
 
 def _print_depth_table(results: list) -> None:
+    import statistics
     from statistics import median
 
-    by: dict[tuple[float, int], list] = {}
+    by: dict[tuple[str, float, int], list] = {}
     for r in results:
-        by.setdefault((r.learning_rate, r.depth), []).append(r)
-    print(f"{'lr':>8} {'depth':>5} {'runs':>4} {'conv':>4} {'cens':>4} {'div':>4} {'median T':>10}")
-    for (lr, depth), rs in sorted(by.items()):
+        by.setdefault((r.lr_mode, r.learning_rate if r.lr_mode == "fixed" else 0.0, r.depth), []).append(r)
+    print(f"{'lr':>8} {'mode':>6} {'depth':>5} {'runs':>4} {'conv':>4} {'cens':>4} {'div':>4} {'median T':>10}")
+    for (mode, _, depth), rs in sorted(by.items()):
+        lr = statistics.median(r.learning_rate for r in rs)
         conv = [r.iterations for r in rs if r.status == "converged"]
         cens = sum(r.status == "censored" for r in rs)
         div = sum(r.status == "diverged" for r in rs)
         # a median is a value only when fewer than half the runs are censored or diverged
         med = f"{median(r.iterations if r.status == 'converged' else float('inf') for r in rs):>10.0f}" \
             if len(conv) > len(rs) / 2 else f"{'> budget':>10}"
-        print(f"{lr:>8g} {depth:>5} {len(rs):>4} {len(conv):>4} {cens:>4} {div:>4} {med}")
+        print(f"{lr:>8.3g} {mode:>6} {depth:>5} {len(rs):>4} {len(conv):>4} {cens:>4} {div:>4} {med}")
 
 
 def _train_sweep(config: Path, args: argparse.Namespace) -> Path:
@@ -73,6 +75,12 @@ def _train_sweep(config: Path, args: argparse.Namespace) -> Path:
     results = load_runs(summary.folder)
     print(f"{cfg.name}: {summary.n_runs} seed runs stored in {summary.folder} "
           f"({summary.n_trained} cells trained now, {summary.wall_seconds:.0f} s)")
+    for i, r in enumerate(summary.rounds, 1):
+        print(f"  round {i}: {r['reason']}")
+    if summary.tuned_rates:
+        print("  tuned learning rates: " + ", ".join(f"K={k}: {lr:.3g}" for k, lr in sorted(summary.tuned_rates.items())))
+    for note in summary.notes:
+        print(f"  note: {note}")
     _print_depth_table(results)
     return summary.folder
 

@@ -57,10 +57,24 @@ class ModelConfig:
 
 
 @dataclass(frozen=True)
+class AdaptiveConfig:
+    """Depths chosen round by round to pin down the reversal depth."""
+
+    low: int = 1                       # shallowest depth that may be swept
+    high: int = 64                     # deepest depth that may be swept
+    target_width: float = 2.0          # stop once the reversal depth's 95 % interval is this narrow (layers)
+    max_rounds: int = 6
+    cpu_budget_s: float | None = None  # stop once the sweep's training has used this much CPU time
+    extra_seeds: int = 2               # seeds added per round where the spread of T is largest
+
+
+@dataclass(frozen=True)
 class SweepConfig:
-    depths: tuple[int, ...] = (1, 2, 3, 4, 6, 8)
+    depths: tuple[int, ...] = (1, 2, 3, 4, 6, 8)   # with `adaptive`: the first round
     seeds: tuple[int, ...] = (0, 1, 2, 3, 4)
     seeds_per_cell: int | None = None  # None: all seeds of a depth train as one batch
+    adaptive: AdaptiveConfig | None = None
+    early_censor: float | None = None  # stop a run at this multiple of the best median T so far
 
 
 @dataclass(frozen=True)
@@ -71,9 +85,21 @@ class ConvergeConfig:
 
 
 @dataclass(frozen=True)
+class TuneConfig:
+    """Per depth, search the learning rate on a log scale before the final seeds run."""
+
+    low: float = 1e-3
+    high: float = 1.0
+    trials: int = 8
+    seeds: int = 2          # seeds per tuning trial (seeds 1000, 1001, ...: apart from the final ones)
+    penalty: float = 2.0    # a censored tuning run counts as penalty x max_updates, a diverged one twice that
+
+
+@dataclass(frozen=True)
 class TrainConfig:
     optimizer: str = "sgd"
-    learning_rate: tuple[float, ...] = (0.05,)
+    learning_rate: tuple[float, ...] = (0.05,)   # fixed rates (may be empty when `tune` is set)
+    tune: TuneConfig | None = None
     momentum: float = 0.0
     batch_size: int = 32
     max_updates: int = 20000
@@ -110,6 +136,12 @@ class SweepFile:
         """The resolved config as plain data (what is written beside the results)."""
         d = asdict(self)
         d.pop("source_path")
+        # write the adaptive-depth and tuning blocks back in the form the sweep file uses
+        adaptive, tune = d["sweep"].pop("adaptive"), d["train"].pop("tune")
+        if adaptive is not None:
+            d["sweep"]["depths"] = adaptive
+        if tune is not None:
+            d["train"]["learning_rate"] = {**tune, "also_fixed": d["train"]["learning_rate"]}
         return json.loads(json.dumps(d))
 
     def fingerprint(self) -> str:
@@ -272,10 +304,37 @@ def _model(c: _Checker, raw: Any) -> ModelConfig:
     )
 
 
+def geometric_depths(low: int, high: int, n: int = 5) -> tuple[int, ...]:
+    """About `n` depths spread evenly in log from low to high (both included)."""
+    raw = [low * (high / low) ** (i / (n - 1)) for i in range(n)]
+    return tuple(sorted({max(low, min(high, round(v))) for v in raw}))
+
+
+def _adaptive(c: _Checker, raw: dict) -> AdaptiveConfig:
+    d = c.keys("sweep.depths", raw, tuple(AdaptiveConfig.__dataclass_fields__))
+    dflt = AdaptiveConfig()
+    a = AdaptiveConfig(
+        low=c.take(d, "sweep.depths", "low", _int(), dflt.low),
+        high=c.take(d, "sweep.depths", "high", _int(), dflt.high),
+        target_width=c.take(d, "sweep.depths", "target_width", _float(), dflt.target_width),
+        max_rounds=c.take(d, "sweep.depths", "max_rounds", _int(), dflt.max_rounds),
+        cpu_budget_s=c.take(d, "sweep.depths", "cpu_budget_s", _float(), None),
+        extra_seeds=c.take(d, "sweep.depths", "extra_seeds", _int(0), dflt.extra_seeds),
+    )
+    if a.high < a.low + 3:
+        c.add("sweep.depths.high", f"must be at least low + 3 ({a.low + 3}) for an adaptive sweep, got {a.high}")
+    return a
+
+
 def _sweep(c: _Checker, raw: Any) -> SweepConfig:
-    d = c.keys("sweep", raw, tuple(SweepConfig.__dataclass_fields__))
+    d = c.keys("sweep", raw, tuple(f for f in SweepConfig.__dataclass_fields__ if f != "adaptive"))
     dflt = SweepConfig()
-    depths = _int_list(c, "sweep.depths", d["depths"]) if "depths" in d else dflt.depths
+    adaptive = None
+    if isinstance(d.get("depths"), dict):
+        adaptive = _adaptive(c, d["depths"])
+        depths = geometric_depths(adaptive.low, max(adaptive.low + 3, adaptive.high // 2))
+    else:
+        depths = _int_list(c, "sweep.depths", d["depths"]) if "depths" in d else dflt.depths
     seeds: Any = dflt.seeds
     if "seeds" in d:
         s = d["seeds"]
@@ -285,14 +344,43 @@ def _sweep(c: _Checker, raw: Any) -> SweepConfig:
             n = c.take(d, "sweep", "seeds", _int(), None)
             seeds = tuple(range(n)) if n else dflt.seeds
     per_cell = c.take(d, "sweep", "seeds_per_cell", _int(), None)
-    return SweepConfig(depths=tuple(sorted(depths or dflt.depths)), seeds=seeds, seeds_per_cell=per_cell)
+    early = c.take(d, "sweep", "early_censor", _float(1.0, lo_open=True), None)
+    return SweepConfig(depths=tuple(sorted(depths or dflt.depths)), seeds=seeds, seeds_per_cell=per_cell,
+                       adaptive=adaptive, early_censor=early)
+
+
+def _tune(c: _Checker, raw: dict) -> tuple[TuneConfig, tuple[float, ...]]:
+    path = "train.learning_rate"
+    d = c.keys(path, raw, (*TuneConfig.__dataclass_fields__, "also_fixed"))
+    dflt = TuneConfig()
+    t = TuneConfig(
+        low=c.take(d, path, "low", _float(), dflt.low),
+        high=c.take(d, path, "high", _float(), dflt.high),
+        trials=c.take(d, path, "trials", _int(2), dflt.trials),
+        seeds=c.take(d, path, "seeds", _int(), dflt.seeds),
+        penalty=c.take(d, path, "penalty", _float(1.0, lo_open=False), dflt.penalty),
+    )
+    if t.high <= t.low:
+        c.add(f"{path}.high", f"must be above low ({t.low:g}), got {t.high:g}")
+    fixed: list[float] = []
+    for i, x in enumerate(d.get("also_fixed") or []):
+        try:
+            fixed.append(_float()(x))
+        except ValueError as exc:
+            c.add(f"{path}.also_fixed[{i}]", str(exc))
+    if "also_fixed" in d and not isinstance(d["also_fixed"], list):
+        c.add(f"{path}.also_fixed", f"must be a list of rates, got {_show(d['also_fixed'])}")
+    return t, tuple(fixed)
 
 
 def _train(c: _Checker, raw: Any) -> TrainConfig:
-    d = c.keys("train", raw, tuple(TrainConfig.__dataclass_fields__))
+    d = c.keys("train", raw, tuple(f for f in TrainConfig.__dataclass_fields__ if f != "tune"))
     dflt = TrainConfig()
     lr: Any = dflt.learning_rate
-    if "learning_rate" in d:
+    tune = None
+    if isinstance(d.get("learning_rate"), dict):
+        tune, lr = _tune(c, d["learning_rate"])
+    elif "learning_rate" in d:
         v = d["learning_rate"]
         if isinstance(v, list) and v:
             vals = []
@@ -321,6 +409,7 @@ def _train(c: _Checker, raw: Any) -> TrainConfig:
     t = TrainConfig(
         optimizer=c.take(d, "train", "optimizer", _choice(OPTIMIZERS), dflt.optimizer),
         learning_rate=lr,
+        tune=tune,
         momentum=c.take(d, "train", "momentum", _float(0.0, 1.0, lo_open=False, hi_open=True), dflt.momentum),
         batch_size=c.take(d, "train", "batch_size", _int(), dflt.batch_size),
         max_updates=c.take(d, "train", "max_updates", _int(), dflt.max_updates),

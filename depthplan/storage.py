@@ -47,6 +47,11 @@ def redact(url: str) -> str:
     return f"{scheme}://{user}:***@{host}"
 
 
+def tuning_storage(url: str) -> Any:
+    """Storage for learning-rate searches: the same database, no heartbeats (only `run` tunes)."""
+    return _rdb(url, heartbeat=False)
+
+
 def local_url(folder: Path) -> str:
     return f"sqlite:///{(Path(folder) / 'store.db').resolve()}"
 
@@ -58,8 +63,8 @@ def _quiet_optuna() -> Any:
     return optuna
 
 
-def _rdb(url: str) -> Any:
-    """An Optuna RDBStorage with heartbeats and retry, safe as a queue on SQLite too."""
+def _rdb(url: str, *, heartbeat: bool = True) -> Any:
+    """An Optuna RDBStorage (with heartbeats and retry unless told), safe as a queue on SQLite too."""
     optuna = _quiet_optuna()
     from optuna.exceptions import ExperimentalWarning
 
@@ -72,9 +77,11 @@ def _rdb(url: str) -> Any:
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ExperimentalWarning)
         try:
-            storage = optuna.storages.RDBStorage(
-                url, engine_kwargs=kwargs, heartbeat_interval=HEARTBEAT_S, grace_period=GRACE_S,
-                heartbeat_stale_trial_callback=optuna.storages.RetryHeartbeatStaleTrialCallback())
+            beats: dict[str, Any] = {}
+            if heartbeat:
+                beats = {"heartbeat_interval": HEARTBEAT_S, "grace_period": GRACE_S,
+                         "heartbeat_stale_trial_callback": optuna.storages.RetryHeartbeatStaleTrialCallback()}
+            storage = optuna.storages.RDBStorage(url, engine_kwargs=kwargs, **beats)
         except Exception as exc:  # sqlalchemy/driver errors vary by backend
             first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
             raise StoreError(f"cannot open the sweep store at {redact(url)}: {first}") from None

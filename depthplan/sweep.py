@@ -16,14 +16,14 @@ import os
 import platform
 import time
 import traceback
-from dataclasses import dataclass
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Callable
 
 from .config import SweepFile, config_from_dict, dump_config
 from .errors import ConfigError, DepthplanError, RunFailed, StoreError
 from .records import CellSpec, RunResult, write_runs_csv
-from .storage import Heartbeat, SweepStore, iter_json_lines, redact, resolve_url
+from .storage import Heartbeat, SweepStore, iter_json_lines, redact, resolve_url, tuning_storage
 
 log = logging.getLogger(__name__)
 
@@ -34,15 +34,35 @@ class Interrupted(DepthplanError):
     exit_code = 130
 
 
-def plan_cells(cfg: SweepFile) -> list[CellSpec]:
-    """Every (learning rate, depth, seed block) cell of the sweep, shallow depths first."""
-    seeds = cfg.sweep.seeds
-    block = cfg.sweep.seeds_per_cell or len(seeds)
+def _initial_state(cfg: SweepFile) -> dict[str, Any]:
+    """The schedule before any round: the sweep file's depths and seeds, no tuned rates."""
+    return {"seeds": {str(k): list(cfg.sweep.seeds) for k in cfg.sweep.depths}, "tuned": {}, "rounds": []}
+
+
+def plan_cells(cfg: SweepFile, state: dict[str, Any] | None = None) -> list[CellSpec]:
+    """Every (learning rate, depth, seed block) cell of the sweep, shallow depths first.
+
+    Args:
+        cfg: the sweep file.
+        state: the stored schedule (seeds per depth, tuned rates per depth); default: the
+            sweep file's own depths and seeds, no tuned rates yet.
+    """
+    state = state or _initial_state(cfg)
     cells = []
+
+    def blocks(depth: int, lr: float, mode: str) -> None:
+        seeds = state["seeds"][str(depth)]
+        block = cfg.sweep.seeds_per_cell or len(cfg.sweep.seeds)
+        for i in range(0, len(seeds), block):
+            cells.append(CellSpec(depth=depth, seeds=tuple(seeds[i:i + block]), learning_rate=lr, lr_mode=mode))
+
+    depths = sorted(int(k) for k in state["seeds"])
     for lr in cfg.train.learning_rate:
-        for depth in cfg.sweep.depths:
-            for i in range(0, len(seeds), block):
-                cells.append(CellSpec(depth=depth, seeds=tuple(seeds[i:i + block]), learning_rate=lr))
+        for depth in depths:
+            blocks(depth, lr, "fixed")
+    for depth in depths:
+        if str(depth) in state["tuned"]:
+            blocks(depth, float(state["tuned"][str(depth)]), "tuned")
     return cells
 
 
@@ -140,6 +160,7 @@ def work(store: SweepStore, cfg: SweepFile, *, progress: Callable[[int], None] |
     comes back as waiting, so this loop waits while others still run.
     """
     from .datasets import load_dataset
+    from .schedule import early_budget
     from .train import train_cell
 
     data = load_dataset(cfg.data)
@@ -155,10 +176,14 @@ def work(store: SweepStore, cfg: SweepFile, *, progress: Callable[[int], None] |
                 return done
             time.sleep(idle_wait_s)
             continue
-        log.info("training cell %s", claim.spec.cell_id)
+        spec = claim.spec
+        if cfg.sweep.early_censor is not None:
+            spec = replace(spec, stop_after=early_budget(store.results(), spec, cfg.sweep.early_censor,
+                                                         cfg.train.max_updates))
+        log.info("training cell %s%s", spec.cell_id, f" (stops at {spec.stop_after})" if spec.stop_after else "")
         try:
             with Heartbeat(store, claim.trial_id):
-                results = train_cell(claim.spec, cfg.model, cfg.train, cfg.probes, data, progress=progress)
+                results = train_cell(spec, cfg.model, cfg.train, cfg.probes, data, progress=progress)
         except KeyboardInterrupt:
             store.release(claim, "interrupted")
             raise
@@ -192,11 +217,67 @@ class SweepSummary:
     n_runs: int
     wall_seconds: float
     by_status: dict[str, int]
+    rounds: list[dict] = field(default_factory=list)          # adaptive rounds and their reasons
+    tuned_rates: dict[int, float] = field(default_factory=dict)
+    notes: list[str] = field(default_factory=list)            # early-censoring saving, rates at the edge
+
+
+def _train_round(cfg: SweepFile, store: SweepStore, cells: list[CellSpec], workers: int,
+                 show_progress: bool, label: str) -> int:
+    store.plan(cells)
+    store.reap_stale()
+    stored = {r.cell_id for r in store.results()}
+    todo = [c for c in cells if c.cell_id not in stored]
+    total = sum(len(c.seeds) for c in todo) * cfg.train.max_updates
+    bar = _progress_bar(total, show_progress, f"{label}: {len(todo)} of {len(cells)} cells to train")
+    try:
+        if workers == 1:
+            return work(store, cfg, progress=bar.update)
+        return _run_processes(cfg, store, workers, bar)
+    finally:
+        bar.close()
+
+
+def _tune_rates(cfg: SweepFile, store: SweepStore, state: dict[str, Any], workers: int, show: bool) -> None:
+    from .schedule import tune_depth
+
+    depths = [int(k) for k in state["seeds"] if k not in state["tuned"]]
+    if not depths:
+        return
+    bar = _progress_bar(len(depths), show, f"{cfg.name}: tuning the learning rate at {len(depths)} depths",
+                        unit=" depths")
+    if workers == 1:
+        for depth in depths:
+            state["tuned"][str(depth)] = tune_depth(cfg, tuning_storage(store.url), depth)
+            store.set_meta("schedule", state)
+            bar.update(1)
+    else:
+        ctx = mp.get_context("spawn")
+        with ctx.Pool(workers) as pool:
+            jobs = {d: pool.apply_async(_tune_process, (cfg.to_dict(), store.url, d)) for d in depths}
+            for depth, job in jobs.items():
+                state["tuned"][str(depth)] = job.get()
+                store.set_meta("schedule", state)
+                bar.update(1)
+    bar.close()
+
+
+def _tune_process(cfg_dict: dict, url: str, depth: int) -> float:
+    import torch
+
+    from .schedule import tune_depth
+    torch.set_num_threads(1)
+    return tune_depth(config_from_dict(cfg_dict), tuning_storage(url), depth)
 
 
 def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int = 1,
               storage: str | None = None, show_progress: bool = True) -> SweepSummary:
     """Train every cell of the sweep that is not stored yet, and export the runs.
+
+    With a tuning block, each depth's learning rate is searched first; with
+    adaptive depths, rounds of training and fitting follow until the policy
+    stops. The schedule (seeds per depth, tuned rates, rounds and their
+    reasons) is stored with the sweep, so a rerun continues where it stopped.
 
     Args:
         cfg: the checked sweep file.
@@ -209,45 +290,90 @@ def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int = 1
         StoreError: the folder holds a different sweep, or is in use.
         Interrupted: Ctrl-C; finished cells stay stored and a rerun does the rest.
     """
+    from .schedule import decide, early_censor_saving, rate_at_edge, tuning_trials
+
     if workers < 1:
         raise ConfigError(f"--workers: must be a positive integer, got {workers}")
     folder = output_folder(cfg, out)
     folder.mkdir(parents=True, exist_ok=True)
     url = resolve_url(storage, cfg.output.storage, folder)
     t0 = time.perf_counter()
+    n_trained = 0
     with FolderLock(folder / ".lock"):
         store = open_sweep(cfg, folder, url)
         write_sidecars(cfg, folder, store)
-        cells = plan_cells(cfg)
-        store.plan(cells)
-        store.reap_stale()
-        stored = {r.cell_id for r in store.results()}
-        todo = [c for c in cells if c.cell_id not in stored]
-        total = sum(len(c.seeds) for c in todo) * cfg.train.max_updates
-        bar = _progress_bar(total, show_progress, f"{cfg.name}: {len(todo)} of {len(cells)} cells to train")
-        try:
-            if workers == 1:
-                import torch
+        state = store.meta().get("schedule") or _initial_state(cfg)
+        store.set_meta("schedule", state)
+        if workers == 1:
+            import torch
 
-                torch.set_num_threads(max(1, min(2, os.cpu_count() or 1)))
-                n_trained = work(store, cfg, progress=bar.update)
-            else:
-                n_trained = _run_processes(cfg, store, workers, bar)
+            torch.set_num_threads(max(1, min(2, os.cpu_count() or 1)))
+        try:
+            while True:
+                if cfg.train.tune is not None:
+                    _tune_rates(cfg, store, state, workers, show_progress)
+                cells = plan_cells(cfg, state)
+                label = cfg.name if not state["rounds"] else f"{cfg.name} round {len(state['rounds']) + 1}"
+                n_trained += _train_round(cfg, store, cells, workers, show_progress, label)
+                if cfg.sweep.adaptive is None or (state["rounds"] and state["rounds"][-1]["stop"]):
+                    break
+                results = store.results()
+                primary = [r for r in results if r.lr_mode == ("tuned" if cfg.train.tune else "fixed")
+                           and (cfg.train.tune or r.learning_rate == cfg.train.learning_rate[0])]
+                d = decide(primary, cfg.sweep.adaptive, round_no=len(state["rounds"]) + 1,
+                           cpu_seconds=sum(r.wall_seconds for r in results))
+                log.warning("%s", d.reason)
+                state["rounds"].append(d.to_dict())
+                if not d.stop:
+                    for k in d.add_depths:
+                        state["seeds"].setdefault(str(k), list(cfg.sweep.seeds))
+                    for k, n in d.add_seeds.items():
+                        have = state["seeds"][str(k)]
+                        have += list(range(max(have) + 1, max(have) + 1 + n))
+                store.set_meta("schedule", state)
+                if d.stop:
+                    break
         except KeyboardInterrupt:
-            bar.close()
             results = export_runs(store, folder)
-            raise Interrupted(f"interrupted: {len({r.cell_id for r in results})} of {len(cells)} cells are stored "
+            raise Interrupted(f"interrupted: {len({r.cell_id for r in results})} cells are stored "
                               f"in {folder}; run the same command again to finish the rest") from None
-        bar.close()
         results = export_runs(store, folder)
-    missing = len(cells) - len({r.cell_id for r in results})
+        if cfg.train.tune is not None:
+            rows = tuning_trials(tuning_storage(store.url), cfg.name, sorted(int(k) for k in state["seeds"]))
+            _write_table(folder / "tuning.csv", rows, ("depth", "trial", "learning_rate", "objective", "statuses"))
+    cells = plan_cells(cfg, state)
+    missing = len(cells) - len({r.cell_id for r in results} & {c.cell_id for c in cells})
     if missing:
         raise RunFailed(f"{missing} of {len(cells)} cells did not finish (see the log above); "
                         "run the same command again to retry them")
     by_status: dict[str, int] = {}
     for r in results:
         by_status[r.status] = by_status.get(r.status, 0) + 1
-    return SweepSummary(folder, len(cells), n_trained, len(results), time.perf_counter() - t0, by_status)
+    notes = []
+    n_early, saved = early_censor_saving(results, cfg.train.max_updates)
+    if cfg.sweep.early_censor is not None:
+        budget = len(results) * cfg.train.max_updates
+        notes.append(f"early censoring stopped {n_early} runs at {cfg.sweep.early_censor:g}x the best median T "
+                     f"so far, saving {saved} of at most {budget} seed-updates ({100 * saved / max(1, budget):.0f} %)")
+    tuned = {int(k): float(v) for k, v in state["tuned"].items()}
+    if cfg.train.tune is not None:
+        edge = sorted(k for k, lr in tuned.items() if rate_at_edge(lr, cfg.train.tune))
+        if edge:
+            notes.append(f"the tuned rate sits at the edge of its range [{cfg.train.tune.low:g}, "
+                         f"{cfg.train.tune.high:g}] at depths {edge}: widen the range and rerun in a new folder")
+    return SweepSummary(folder, len(cells), n_trained, len(results), time.perf_counter() - t0, by_status,
+                        state["rounds"], tuned, notes)
+
+
+def _write_table(path: Path, rows: list[dict], columns: tuple[str, ...]) -> None:
+    import csv
+
+    tmp = path.with_suffix(".tmp")
+    with tmp.open("w", newline="") as fh:
+        w = csv.DictWriter(fh, fieldnames=columns)
+        w.writeheader()
+        w.writerows(rows)
+    tmp.replace(path)
 
 
 def _run_processes(cfg: SweepFile, store: SweepStore, workers: int, bar: Any) -> int:
@@ -285,12 +411,12 @@ class _NoBar:
         pass
 
 
-def _progress_bar(total: int, show: bool, desc: str) -> Any:
+def _progress_bar(total: int, show: bool, desc: str, unit: str = " seed-updates") -> Any:
     if not show or total == 0:
         return _NoBar()
     from tqdm import tqdm
 
-    return tqdm(total=total, desc=desc, unit=" seed-updates", unit_scale=True, dynamic_ncols=True,
+    return tqdm(total=total, desc=desc, unit=unit, unit_scale=True, dynamic_ncols=True,
                 mininterval=0.5, smoothing=0.05)
 
 
