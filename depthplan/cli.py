@@ -65,11 +65,17 @@ def _print_depth_table(results: list) -> None:
 
 def _train_sweep(config: Path, args: argparse.Namespace) -> Path:
     from .config import load_config
+    from .storage import STORAGE_ENV, redact
     from .sweep import run_sweep
 
     cfg = load_config(config)
     summary = run_sweep(cfg, out=args.out, workers=args.workers, storage=args.storage,
-                        show_progress=not args.quiet)
+                        show_progress=not args.quiet, plan_only=getattr(args, "plan_only", False))
+    if getattr(args, "plan_only", False):
+        print(f"{cfg.name}: cells planned in {redact(summary_url(cfg, args))}; start workers with "
+              f"`depthplan worker --study {cfg.name}` (storage from --storage or ${STORAGE_ENV}), "
+              f"then run this command again without --plan-only to collect the results")
+        return summary.folder
     from .fitting import load_runs
 
     results = load_runs(summary.folder)
@@ -83,6 +89,13 @@ def _train_sweep(config: Path, args: argparse.Namespace) -> Path:
         print(f"  note: {note}")
     _print_depth_table(results)
     return summary.folder
+
+
+def summary_url(cfg: object, args: argparse.Namespace) -> str:
+    from .storage import resolve_url
+    from .sweep import output_folder
+
+    return resolve_url(args.storage, cfg.output.storage, output_folder(cfg, args.out))  # type: ignore[attr-defined]
 
 
 def _cmd_run(args: argparse.Namespace) -> int:
@@ -136,7 +149,7 @@ def _cmd_worker(args: argparse.Namespace) -> int:
     torch.set_num_threads(1)
     store = SweepStore(url, args.study)
     cfg = config_from_dict(store.meta()["config"])
-    n = work(store, cfg)
+    n = work(store, cfg, linger_s=args.linger)
     print(f"worker: {n} cells trained and stored in sweep '{args.study}'")
     return 0
 
@@ -171,6 +184,8 @@ def build_parser() -> argparse.ArgumentParser:
     sp = add("run", _cmd_run, "train the sweep (resumes: only missing cells are trained)")
     sp.add_argument("config", metavar="CONFIG")
     train_opts(sp)
+    sp.add_argument("--plan-only", action="store_true",
+                    help="enqueue the cells for `depthplan worker` processes and stop")
     sp = add("fit", _cmd_fit, "fit the depth scaling law to a results folder or a measurements CSV")
     sp.add_argument("path", metavar="PATH")
     sp.add_argument("--json", metavar="FILE", help="where to write fit.json")
@@ -185,6 +200,8 @@ def build_parser() -> argparse.ArgumentParser:
     sp = add("worker", _cmd_worker, "claim and train cells of a sweep planned in a shared store")
     sp.add_argument("--storage", metavar="URL", help="storage URL (default: $DEPTHPLAN_STORAGE)")
     sp.add_argument("--study", required=True, metavar="NAME", help="the sweep's name")
+    sp.add_argument("--linger", type=float, default=0.0, metavar="S",
+                    help="when idle, wait this many seconds for newly planned cells before stopping (default 0)")
     return p
 
 

@@ -153,11 +153,13 @@ def export_runs(store: SweepStore, folder: Path) -> list[RunResult]:
 # --------------------------------------------------------------------------- one worker
 
 def work(store: SweepStore, cfg: SweepFile, *, progress: Callable[[int], None] | None = None,
-         idle_wait_s: float = 2.0) -> int:
+         idle_wait_s: float = 2.0, linger_s: float = 0.0) -> int:
     """Claim and train cells until none is waiting or running; return how many this worker stored.
 
     A cell held by a worker that died is failed once its heartbeat goes stale and
-    comes back as waiting, so this loop waits while others still run.
+    comes back as waiting, so this loop waits while others still run. With
+    `linger_s`, an idle worker waits that long for newly planned cells (the next
+    round of an adaptive sweep) before it stops.
     """
     from .datasets import load_dataset
     from .schedule import early_budget
@@ -165,6 +167,7 @@ def work(store: SweepStore, cfg: SweepFile, *, progress: Callable[[int], None] |
 
     data = load_dataset(cfg.data)
     done = 0
+    idle_since = None
     while True:
         claim = store.claim()
         if claim is None:
@@ -173,9 +176,12 @@ def work(store: SweepStore, cfg: SweepFile, *, progress: Callable[[int], None] |
             if counts["waiting"]:
                 continue
             if not counts["running"]:
-                return done
+                idle_since = idle_since or time.monotonic()
+                if time.monotonic() - idle_since >= linger_s:
+                    return done
             time.sleep(idle_wait_s)
             continue
+        idle_since = None
         spec = claim.spec
         if cfg.sweep.early_censor is not None:
             spec = replace(spec, stop_after=early_budget(store.results(), spec, cfg.sweep.early_censor,
@@ -271,7 +277,7 @@ def _tune_process(cfg_dict: dict, url: str, depth: int) -> float:
 
 
 def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int = 1,
-              storage: str | None = None, show_progress: bool = True) -> SweepSummary:
+              storage: str | None = None, show_progress: bool = True, plan_only: bool = False) -> SweepSummary:
     """Train every cell of the sweep that is not stored yet, and export the runs.
 
     With a tuning block, each depth's learning rate is searched first; with
@@ -285,6 +291,7 @@ def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int = 1
         workers: local worker processes (1: train in this process).
         storage: storage URL (default `$DEPTHPLAN_STORAGE`, `output.storage`, or SQLite in the folder).
         show_progress: draw a progress bar on stderr.
+        plan_only: enqueue the (first round's) cells for `depthplan worker` processes and return.
 
     Raises:
         StoreError: the folder holds a different sweep, or is in use.
@@ -313,6 +320,9 @@ def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int = 1
                 if cfg.train.tune is not None:
                     _tune_rates(cfg, store, state, workers, show_progress)
                 cells = plan_cells(cfg, state)
+                if plan_only:
+                    store.plan(cells)
+                    break
                 label = cfg.name if not state["rounds"] else f"{cfg.name} round {len(state['rounds']) + 1}"
                 n_trained += _train_round(cfg, store, cells, workers, show_progress, label)
                 if cfg.sweep.adaptive is None or (state["rounds"] and state["rounds"][-1]["stop"]):
@@ -343,7 +353,7 @@ def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int = 1
             _write_table(folder / "tuning.csv", rows, ("depth", "trial", "learning_rate", "objective", "statuses"))
     cells = plan_cells(cfg, state)
     missing = len(cells) - len({r.cell_id for r in results} & {c.cell_id for c in cells})
-    if missing:
+    if missing and not plan_only:
         raise RunFailed(f"{missing} of {len(cells)} cells did not finish (see the log above); "
                         "run the same command again to retry them")
     by_status: dict[str, int] = {}
