@@ -54,3 +54,33 @@ def test_help_and_torch_free_modules_do_not_import_torch() -> None:
                           capture_output=True, text=True)
     assert proc.returncode == 0 and "usage: depthplan" in proc.stdout
     assert " torch" not in proc.stderr      # -X importtime lists every module imported
+
+
+def test_fit_through_the_cli_on_a_measurements_table(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
+    import json
+
+    # invented measurements: T = 6000 / K exactly at four depths, two seeds each
+    rows = "".join(f"{k},{6000 // k},{s}\n" for k in (1, 2, 4, 8) for s in (0, 1))
+    table = tmp_path / "timings.csv"
+    table.write_text("depth,iterations,seed\n" + rows)
+    out = tmp_path / "fit.json"
+    assert main(["fit", str(table), "--json", str(out), "--bootstrap", "50"]) == 0
+    fit = json.loads(out.read_text())
+    assert fit["power_law"]["slope"] == pytest.approx(-1.0, abs=1e-3)
+    assert "fit written to" in capsys.readouterr().out
+
+
+@pytest.mark.parametrize("text, message", [
+    ("depth,iterations\n1,100\n2,abc\n3,30\n", "line 3, column iterations"),
+    ("depth,iters\n1,100\n", "missing column iterations"),
+    ("depth,iterations\n1,100\n2,50\n", "at least three"),
+    ("depth,iterations\n1,100\n0,50\n3,30\n", "line 3, column depth"),
+])
+def test_fit_refuses_a_bad_table_in_one_line(tmp_path: Path, capsys: pytest.CaptureFixture,
+                                             text: str, message: str) -> None:
+    table = tmp_path / "timings.csv"
+    table.write_text(text)
+    assert main(["fit", str(table)]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and message in err and "timings.csv" in err
+    assert not (tmp_path / "timings.fit.json").exists()
