@@ -14,16 +14,19 @@ Numbers are JSON numbers, null where undefined; never NaN.
 
     schema            "depthplan-fit/1"
     source            what was fitted (path as given)
+    input             {kind: results_folder|table, sweep_name, max_updates} (fit_path only)
     group             {lr_mode, learning_rate}: the runs the top-level fields describe
     depth_gain        true when the slope and its intervals lie below 0
+    depths_swept, n_runs, eval_every
     per_depth[]       {depth, runs, converged, censored, diverged, median, q25, q75,
-                       median_note, budget, seconds_per_update}
+                       median_note, quartile_note, budget, seconds_per_update}
     power_law         {slope, slope_se, slope_ci, slope_ci_analytic, intercept, cov,
                        sigma, alpha, alpha_ci, r2, method, depths_used, n_runs,
                        n_censored, without_shallowest{...}}
     reversal          {status: observed|beyond_range|none, depth, depth_ci,
                        falling_slope, rising_slope, rising_slope_ci, bic_single,
-                       bic_segmented, n_depths_past, smooth_depth, note}
+                       bic_segmented, n_depths_past, smooth_depth, smooth_model,
+                       rise_suspected, note}
     planning          {save_fraction, last_depth_worth_adding{depth, ci, extrapolated},
                        compute_optimal_depth{depth, ci, extrapolated, cost_model, note},
                        recommended_depth, recommended_basis}
@@ -752,7 +755,9 @@ def _planning_block(model: str, point: np.ndarray, draws: np.ndarray, depths: li
 
     def figure(point_value: float, boot: np.ndarray) -> dict[str, Any]:
         value = None if not np.isfinite(point_value) else int(point_value)
-        return {"depth": value, "ci": _ci(boot),
+        ci = _ci(boot)                       # whole depths: round the interval outwards
+        ci = None if ci is None else [math.floor(ci[0]), math.ceil(ci[1])]
+        return {"depth": value, "ci": ci,
                 "extrapolated": value is None or not lo <= value <= hi}
 
     ok = np.isfinite(draws).all(1)
@@ -775,7 +780,7 @@ def _planning_block(model: str, point: np.ndarray, draws: np.ndarray, depths: li
         worth = {"depth": lo, "ci": None, "extrapolated": False}
         optimal.update(depth=None, ci=None, extrapolated=False,
                        note="depth gives no gain in these runs")
-        rec, basis = lo, "depth gives no gain here: the shallowest swept depth"
+        rec, basis = lo, "shallowest swept depth, as depth gives no gain here"
     else:
         options = [(worth["depth"], f"last depth worth adding (next layer saves under "
                                     f"{100 * save_fraction:g} %)"),
@@ -783,8 +788,8 @@ def _planning_block(model: str, point: np.ndarray, draws: np.ndarray, depths: li
         options = [(k, b) for k, b in options if k is not None]
         rec, basis = min(options) if options else (None, "no figure could be computed")
         if rise_after is not None and (rec is None or rec > rise_after):
-            rec, basis = rise_after, (f"depth of the lowest measured T (T turns up past it; "
-                                      f"the fitted law alone would say {rec or 'deeper'})")
+            rec, basis = rise_after, (f"depth of the lowest measured T: T turns up past it, "
+                                      f"and the fitted law alone would say {rec or 'deeper'}")
     return {"save_fraction": save_fraction, "model": model,
             "last_depth_worth_adding": worth, "compute_optimal_depth": optimal,
             "recommended_depth": rec, "recommended_basis": basis,
@@ -1042,7 +1047,8 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
 
     Args:
         runs: run records (`load_runs`); statuses other than converged,
-            censored and diverged are skipped with a warning.
+            censored and diverged, and trials of a learning-rate search
+            (lr_mode "tuning"), are left out with a warning.
         save_fraction: a layer is worth adding while it saves at least this
             fraction of T.
         n_boot: bootstrap resamples for the intervals.
@@ -1067,7 +1073,8 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
         raise ConfigError(f"save_fraction: must be between 0 and 1; got {save_fraction}")
     if n_boot < 20:
         raise ConfigError(f"n_boot: must be an int >= 20; got {n_boot}")
-    known = [r for r in runs if r.status in STATUSES]
+    # trials of a learning-rate search measure the search, not the depth law
+    known = [r for r in runs if r.status in STATUSES and r.lr_mode != "tuning"]
     if not known:
         raise DataError(f"{source or 'input'}: no finished runs to fit")
     if eval_every is None:
@@ -1096,8 +1103,8 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
         interaction = _lr_interaction(by_rate, groups, primary)
     notes = list(main["warnings"])
     if len(known) < len(runs):
-        notes.insert(0, f"{len(runs) - len(known)} runs with another status (failed or "
-                        "unfinished) are left out")
+        notes.insert(0, f"{_plural(len(runs) - len(known), 'run')} failed, unfinished or from "
+                        "a learning-rate search left out")
     if interaction:
         notes.append(interaction["message"])
     result = {"schema": SCHEMA, "source": source, **main, "by_learning_rate": by_rate,
@@ -1202,8 +1209,9 @@ def format_summary(fit: dict[str, Any]) -> str:
              + (f" from {fit['source']}" if fit.get("source") else "") + "."]
     rec = plan["recommended_depth"]
     if rec is not None:
-        lines.append(f"Recommended depth: {rec} layers, the {plan['recommended_basis']}"
-                     + (" [extrapolated]" if plan["recommended_extrapolated"] else "") + ".")
+        lines.append(f"Recommended depth: {_plural(rec, 'layer')}"
+                     + (" [extrapolated]" if plan["recommended_extrapolated"] else "")
+                     + f" (from the {plan['recommended_basis']}).")
     used = pl["depths_used"]
     lines.append(f"Depth law T ~ K^s over depths {used[0]}-{used[-1]}: s = {pl['slope']:.2f} "
                  f"+/- {pl['slope_se']:.2f}{_ci_text(pl['slope_ci'])}, R^2 = {pl['r2']:.2f}"
@@ -1239,9 +1247,10 @@ def format_summary(fit: dict[str, Any]) -> str:
         lines.append(f"Compute-optimal depth: not given ({opt['note']}).")
     diff = fit.get("diffusion")
     if diff and diff.get("late_exponent_median") is not None:
-        alpha = f"{diff['alpha']:.2f}" if diff.get("alpha") is not None else "not defined"
+        alpha = (f"against alpha {diff['alpha']:.2f} from the depth law"
+                 if diff.get("alpha") is not None else "(no alpha from the depth law to compare)")
         text = (f"Probes: late-phase displacement exponent {diff['late_exponent_median']:.2f} "
-                f"against alpha {alpha} from the depth law")
+                f"{alpha}")
         if diff.get("snr_drop_db_median") is not None:
             text += f"; gradient SNR falls {diff['snr_drop_db_median']:.0f} dB"
         if diff.get("transition_step_median") is not None:

@@ -424,6 +424,15 @@ def test_warnings_for_few_seeds_heavy_censoring_coarse_evaluation_and_diverged_r
     assert "1 run diverged" in text
 
 
+def test_failed_runs_and_search_trials_are_left_out_with_a_warning():
+    rng = np.random.default_rng(28)
+    runs = synthetic_runs(power(5000, -1.0), range(1, 6), 3, 0.1, rng)
+    extra = [run(2, 40, "failed"), run(3, 900, lr=0.3, lr_mode="tuning")]
+    fit = F.fit_runs(runs + extra, n_boot=60)
+    assert fit["n_runs"] == len(runs) and fit["by_learning_rate"] == []
+    assert fit["warnings"][0].startswith("2 runs failed, unfinished or from a learning-rate search")
+
+
 def test_single_run_per_depth_uses_residual_bootstrap():
     rng = np.random.default_rng(22)
     fit = F.fit_runs(synthetic_runs(power(5000, -1.0), range(1, 9), 1, 0.1, rng), n_boot=200)
