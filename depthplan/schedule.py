@@ -184,13 +184,16 @@ def decide(runs: list[RunResult], policy: AdaptiveConfig, *, round_no: int, cpu_
     or, while T still falls, deeper depths; and `policy.extra_seeds` seeds at
     the depth whose T spreads most.
     """
-    from .errors import ConvergenceWarning
+    from .errors import ConvergenceWarning, DataError
     from .fitting import fit_runs
 
     swept = sorted({r.depth for r in runs})
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", ConvergenceWarning)
-        fit = fit_runs(runs, n_boot=n_boot, seed=seed)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", ConvergenceWarning)
+            fit = fit_runs(runs, n_boot=n_boot, seed=seed)
+    except DataError as exc:
+        return Decision(True, f"cannot fit the runs so far ({exc}); no depth added")
     rev = fit.get("reversal") or {}
     status, k_star, ci = rev.get("status"), rev.get("depth"), rev.get("depth_ci")
     summary = {"status": status, "depth": k_star, "depth_ci": ci}

@@ -126,13 +126,21 @@ def open_sweep(cfg: SweepFile, folder: Path, url: str) -> SweepStore:
     return store
 
 
-def write_sidecars(cfg: SweepFile, folder: Path, store: SweepStore) -> None:
-    """The resolved config and sweep facts beside the results (so every number traces to its settings)."""
+def write_sidecars(cfg: SweepFile, folder: Path, store: SweepStore, state: dict[str, Any] | None = None) -> None:
+    """The resolved config and sweep facts beside the results (so every number traces to its settings).
+
+    `sweep.json` also carries the schedule when one is given: the depths and seeds
+    swept, tuned rates per depth, and each adaptive round with its reason.
+    """
     (folder / "config.yaml").write_text(dump_config(cfg))
+    state = state or _initial_state(cfg)
     info = {"name": cfg.name, "fingerprint": cfg.fingerprint(), "storage": redact(store.url),
             "eval_every": cfg.train.eval_every, "max_updates": cfg.train.max_updates,
-            "depths": list(cfg.sweep.depths), "seeds": list(cfg.sweep.seeds),
-            "learning_rates": list(cfg.train.learning_rate), "config_file": cfg.source_path}
+            "depths": sorted(int(k) for k in state["seeds"]), "seeds": list(cfg.sweep.seeds),
+            "seeds_per_depth": {k: len(v) for k, v in state["seeds"].items()},
+            "learning_rates": list(cfg.train.learning_rate),
+            "tuned_rates": state["tuned"], "rounds": state["rounds"],
+            "early_censor": cfg.sweep.early_censor, "config_file": cfg.source_path}
     _atomic_write(folder / "sweep.json", json.dumps(info, indent=2) + "\n")
 
 
@@ -348,6 +356,7 @@ def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int = 1
             raise Interrupted(f"interrupted: {len({r.cell_id for r in results})} cells are stored "
                               f"in {folder}; run the same command again to finish the rest") from None
         results = export_runs(store, folder)
+        write_sidecars(cfg, folder, store, state)
         if cfg.train.tune is not None:
             rows = tuning_trials(tuning_storage(store.url), cfg.name, sorted(int(k) for k in state["seeds"]))
             _write_table(folder / "tuning.csv", rows, ("depth", "trial", "learning_rate", "objective", "statuses"))

@@ -121,3 +121,34 @@ def test_tuning_finds_a_rate_inside_its_bounds_and_records_every_trial(write_yam
     assert any("early censoring stopped" in n for n in summary.notes)
     again = run_sweep(cfg, out=out, show_progress=False)           # resumes: no new trial, no new cell
     assert again.n_trained == 0 and again.tuned_rates == summary.tuned_rates
+
+
+ADAPTIVE = """
+name: rounds
+data: {source: synthetic, n_samples: 300, n_features: 16}
+model: {width: 16}
+sweep:
+  depths: {low: 1, high: 10, max_rounds: 2, extra_seeds: 1}
+  seeds: 2
+train: {learning_rate: 0.05, max_updates: 2000, eval_every: 20, converge_when: {train_loss_below: 0.4}}
+probes: {displacement: false, snr: false}
+"""
+
+
+def test_adaptive_sweep_stores_its_rounds_and_resumes(write_yaml, tmp_path: Path) -> None:
+    import json
+
+    cfg = load_config(write_yaml(ADAPTIVE))
+    out = tmp_path / "res"
+    summary = run_sweep(cfg, out=out, show_progress=False)
+    assert len(summary.rounds) == 2 and summary.rounds[-1]["stop"] and not summary.rounds[0]["stop"]
+    info = json.loads((out / "sweep.json").read_text())
+    assert info["rounds"] == summary.rounds
+    first = {1, 2, 3, 5}                            # geometric from low to high / 2
+    assert set(info["depths"]) == first | set(summary.rounds[0]["add_depths"])
+    assert min(summary.rounds[0]["add_depths"]) > 5     # T still fell at 5: the policy went deeper
+    with (out / "runs.csv").open() as fh:
+        n_rows = sum(1 for _ in csv.DictReader(fh))
+    assert n_rows == sum(info["seeds_per_depth"].values())
+    again = run_sweep(cfg, out=out, show_progress=False)
+    assert again.n_trained == 0 and again.rounds == summary.rounds
