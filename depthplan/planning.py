@@ -1,0 +1,148 @@
+"""The planning figures of a fitted law, per parameter row (numpy/scipy, no torch).
+
+`log_t_curve` evaluates the power law or the broken stick at given depths;
+`last_depth_worth_adding` and `compute_optimal_depth` read the planning
+figures off it, the latter with seconds per update modelled by
+`fit_cost_model`. Each takes a (B, p) array of parameters, so the point fit
+and all bootstrap draws go through in one call. `_planning_block` and
+`_curve_block` turn a group's point fit and bootstrap draws
+(`depthplan.depthlaw`) into the `planning` and `curve` blocks of fit.json.
+"""
+from __future__ import annotations
+
+import math
+from typing import Any, Sequence
+
+import numpy as np
+from scipy import optimize
+
+from .depthlaw import _ci
+
+_K_MAX = 1000          # deepest depth the planning figures search
+
+
+# ---------------------------------------------------------------- planning figures
+
+def log_t_curve(model: str, params: np.ndarray, depths: np.ndarray) -> np.ndarray:
+    """Fitted mean log T at `depths` for each parameter row.
+
+    Args:
+        model: "power_law" with params (B, 2) = (a, s), or "segmented" with
+            params (B, 4) = (a, s, d, psi), d = rising - falling slope.
+        depths: (m,) depths K.
+
+    Returns:
+        (B, m) array.
+    """
+    params = np.atleast_2d(np.asarray(params, float))
+    x = np.log(np.asarray(depths, float))[None]
+    out = params[:, :1] + params[:, 1:2] * x
+    if model == "segmented":
+        out = out + params[:, 2:3] * np.clip(x - params[:, 3:4], 0.0, None)
+    elif model != "power_law":
+        raise ValueError(f"unknown model {model!r}")
+    return out
+
+
+def last_depth_worth_adding(model: str, params: np.ndarray, save_fraction: float = 0.05,
+                            k_max: int = _K_MAX) -> np.ndarray:
+    """Smallest K whose next layer saves less than `save_fraction` of T.
+
+    Returns one depth per parameter row (float; NaN when every layer up to
+    `k_max` still saves at least that much).
+    """
+    ks = np.arange(1, k_max + 2)
+    lt = log_t_curve(model, params, ks)
+    saving = 1.0 - np.exp(lt[:, 1:] - lt[:, :-1])        # (B, k_max)
+    small = saving < save_fraction
+    first = np.argmax(small, axis=1)
+    return np.where(small.any(1), ks[first], np.nan).astype(float)
+
+
+def fit_cost_model(depths: Sequence[float], seconds: Sequence[float]) -> tuple[float, float] | None:
+    """Seconds per update as u + v K (u, v >= 0) from per-depth measurements, or None."""
+    k = np.asarray(depths, float)
+    sec = np.asarray(seconds, float)
+    ok = np.isfinite(sec) & (sec > 0)
+    if len(np.unique(k[ok])) < 2:
+        return None
+    coef, _ = optimize.nnls(np.column_stack([np.ones(ok.sum()), k[ok]]), sec[ok])
+    if coef.sum() <= 0:
+        return None
+    return float(coef[0]), float(coef[1])
+
+
+def compute_optimal_depth(model: str, params: np.ndarray, cost: tuple[float, float],
+                          k_max: int = _K_MAX) -> np.ndarray:
+    """Depth minimising T(K) * (u + v K) over 1..k_max, per parameter row.
+
+    NaN where the minimum is at `k_max` (deeper keeps paying within the law).
+    """
+    ks = np.arange(1, k_max + 1)
+    total = log_t_curve(model, params, ks) + np.log(cost[0] + cost[1] * ks)[None]
+    j = np.argmin(total, axis=1)
+    return np.where(j < k_max - 1, ks[j], np.nan).astype(float)
+
+
+# ---------------------------------------------------------------- fit.json blocks
+
+def _planning_block(model: str, point: np.ndarray, draws: np.ndarray, depths: list[int],
+                    per_depth: list[dict[str, Any]], save_fraction: float, gain: bool,
+                    rise_after: int | None = None) -> dict[str, Any]:
+    """Planning figures; `rise_after` caps the recommendation where T turns up unconfirmed."""
+    lo, hi = depths[0], depths[-1]
+
+    def figure(point_value: float, boot: np.ndarray) -> dict[str, Any]:
+        value = None if not np.isfinite(point_value) else int(point_value)
+        ci = _ci(boot)                       # whole depths: round the interval outwards
+        ci = None if ci is None else [math.floor(ci[0]), math.ceil(ci[1])]
+        return {"depth": value, "ci": ci,
+                "extrapolated": value is None or not lo <= value <= hi}
+
+    ok = np.isfinite(draws).all(1)
+    worth = figure(last_depth_worth_adding(model, point[None], save_fraction)[0],
+                   last_depth_worth_adding(model, draws[ok], save_fraction))
+    sec = [(r["depth"], r["seconds_per_update"]) for r in per_depth
+           if r["seconds_per_update"] is not None]
+    cost = fit_cost_model([k for k, _ in sec], [v for _, v in sec]) if sec else None
+    if cost is None:
+        optimal = {"depth": None, "ci": None, "extrapolated": False, "cost_model": None,
+                   "note": "seconds per update measured at fewer than two depths"}
+    else:
+        optimal = figure(compute_optimal_depth(model, point[None], cost)[0],
+                         compute_optimal_depth(model, draws[ok], cost))
+        optimal["cost_model"] = {"seconds_intercept": cost[0], "seconds_per_layer": cost[1]}
+        optimal["note"] = "" if optimal["depth"] is not None else (
+            f"under the fitted law, T times seconds per update keeps falling up to "
+            f"{_K_MAX} layers")
+    if not gain:
+        worth = {"depth": lo, "ci": None, "extrapolated": False}
+        optimal.update(depth=None, ci=None, extrapolated=False,
+                       note="depth gives no gain in these runs")
+        rec, basis = lo, "shallowest swept depth, as depth gives no gain here"
+    else:
+        options = [(worth["depth"], f"last depth worth adding (next layer saves under "
+                                    f"{100 * save_fraction:g} %)"),
+                   (optimal["depth"], "compute-optimal depth (measured seconds per update)")]
+        options = [(k, b) for k, b in options if k is not None]
+        rec, basis = min(options) if options else (None, "no figure could be computed")
+        if rise_after is not None and (rec is None or rec > rise_after):
+            rec, basis = rise_after, (f"depth of the lowest measured T: T turns up past it, "
+                                      f"and the fitted law alone would say {rec or 'deeper'}")
+    return {"save_fraction": save_fraction, "model": model,
+            "last_depth_worth_adding": worth, "compute_optimal_depth": optimal,
+            "recommended_depth": rec, "recommended_basis": basis,
+            "recommended_extrapolated": rec is not None and not lo <= rec <= hi}
+
+
+def _curve_block(model: str, point: np.ndarray, draws: np.ndarray, k_lo: float,
+                 k_hi: float) -> dict[str, Any]:
+    grid = np.geomspace(k_lo, k_hi, 60)
+    ok = np.isfinite(draws).all(1)
+    mid = np.exp(log_t_curve(model, point[None], grid)[0])
+    if ok.sum() >= 10:
+        lo, hi = np.exp(np.quantile(log_t_curve(model, draws[ok], grid), [0.025, 0.975], axis=0))
+    else:
+        lo = hi = np.full_like(grid, np.nan)
+    return {"model": model, "depths": grid.tolist(), "median": mid.tolist(),
+            "lo": lo.tolist(), "hi": hi.tolist()}

@@ -1,0 +1,162 @@
+"""The sentences of a fit: fit.json's warnings and the summary `depthplan fit` prints.
+
+`_group_warnings` writes the warnings of one learning-rate group from its
+assembled fit; `format_summary` turns a whole fit.json dict into the short
+plain text of the CLI. Plain Python, no torch.
+"""
+from __future__ import annotations
+
+from typing import Any, Sequence
+
+from .depthlaw import _Arrays
+
+
+# ---------------------------------------------------------------- wording
+
+def _plural(n: int, noun: str) -> str:
+    return f"{n} {noun}{'s' * (n != 1)}"
+
+
+def _describe(group: dict[str, Any]) -> str:
+    if group["lr_mode"] == "tuned":
+        return "learning rate tuned per depth"
+    if group["learning_rate"] is None:
+        return "learning rate not recorded"
+    return f"fixed learning rate {group['learning_rate']:g}"
+
+
+# ---------------------------------------------------------------- warnings of one group
+
+def _group_warnings(fit: dict[str, Any], d: _Arrays, eval_every: int | None) -> list[str]:
+    out: list[str] = []
+    depths, rows = fit["depths_swept"], fit["per_depth"]
+    pl, rev, plan = fit["power_law"], fit["reversal"], fit["planning"]
+    if len(depths) < 5:
+        out.append(f"only {len(depths)} depths swept; a depth law wants five or more")
+    if len(pl["depths_used"]) < 3:
+        out.append(f"the slope rests on {len(pl['depths_used'])} depths only")
+    fewest = min(r["converged"] + r["censored"] for r in rows)
+    if fewest < 3:
+        out.append(f"as few as {_plural(fewest, 'finished run')} at a depth: intervals "
+                   "are rough; use three seeds or more per depth")
+    if pl["ci_method"] == "residuals":
+        out.append("some depths have a single run: intervals resample residuals, not seeds")
+    heavy = [r["depth"] for r in rows if r["censored"] and 2 * r["censored"] >= r["converged"]
+             + r["censored"]]
+    if heavy:
+        out.append(f"heavy censoring at depth {', '.join(map(str, heavy))}: half or more of the "
+                   "runs hit the budget; they count as lower bounds, but raise max_updates")
+    elif d.C.mean() > 0.25:
+        out.append(f"{100 * d.C.mean():.0f} % of the runs hit the budget; raise max_updates")
+    n_div = sum(r["diverged"] for r in rows)
+    if n_div:
+        out.append(f"{_plural(n_div, 'run')} diverged and {'are' if n_div > 1 else 'is'} "
+                   "left out of the fit; lower the learning rate")
+    if rev["status"] == "observed":
+        ci = rev["depth_ci"] or [depths[0], depths[-1]]
+        if rev["n_depths_past"] <= 2 or ci[0] < depths[1] or ci[1] > depths[-2]:
+            out.append(f"the reversal at K = {rev['depth']:.1f} sits at the edge of the swept "
+                       "depths; sweep a few layers deeper to confirm it")
+        if rev["smooth_depth"] is None:
+            out.append("the smooth two-term model did not fit; the reversal depth is not "
+                       "cross-checked")
+        elif abs(rev["smooth_depth"] - rev["depth"]) > 1:
+            out.append(f"the segmented fit (K = {rev['depth']:.1f}) and the smooth two-term model "
+                       f"(K = {rev['smooth_depth']:.1f}) disagree by more than one layer")
+    if rev["rise_suspected"]:
+        out.append(f"a rise past K = {fit['power_law']['depths_used'][-1]} is hinted but not "
+                   "established; sweep deeper and add seeds before trusting a reversal")
+    finished = [(r["median"], r["depth"]) for r in rows if r["median"] is not None]
+    if eval_every and finished:
+        t_low, k_low = min(finished)
+        if eval_every > t_low / 20:
+            out.append(f"evaluation every {eval_every} updates is coarse against T = {t_low:g} at "
+                       f"depth {k_low} (more than T/20); evaluate more often")
+    for key, label in (("last_depth_worth_adding", "last depth worth adding"),
+                       ("compute_optimal_depth", "compute-optimal depth")):
+        fig = plan[key]
+        if fig["depth"] is not None and fig["extrapolated"]:
+            out.append(f"the {label} ({fig['depth']}) lies outside the swept depths "
+                       f"{depths[0]}-{depths[-1]}: it is extrapolated from the fitted law")
+    without = pl.get("without_shallowest")
+    if without and pl["slope"] < without["slope_ci"][0]:
+        out.append(f"the shallowest depth steepens the slope ({pl['slope']:.2f} with it, "
+                   f"{without['slope']:.2f} without); it may be capacity-limited")
+    if not pl["converged"]:
+        out.append("the censored power-law fit did not converge; raise max_updates")
+    if pl["n_boot_failed"] > 0.05 * fit["bootstrap"]["n_boot"]:
+        out.append(f"{pl['n_boot_failed']} bootstrap resamples failed to fit")
+    return out
+
+
+# ---------------------------------------------------------------- summary text
+
+def _ci_text(ci: Sequence[float] | None, fmt: str = ".2f") -> str:
+    return "" if not ci or None in ci else f" (95 % interval {ci[0]:{fmt}} to {ci[1]:{fmt}})"
+
+
+def format_summary(fit: dict[str, Any]) -> str:
+    """The short plain-text summary `depthplan fit` prints."""
+    pl, rev, plan = fit["power_law"], fit["reversal"], fit["planning"]
+    depths = fit["depths_swept"]
+    lines = [f"Fitted {fit['n_runs']} runs at depths {depths[0]}-{depths[-1]}"
+             f" ({_describe(fit['group'])})"
+             + (f" from {fit['source']}" if fit.get("source") else "") + "."]
+    rec = plan["recommended_depth"]
+    if rec is not None:
+        lines.append(f"Recommended depth: {_plural(rec, 'layer')}"
+                     + (" [extrapolated]" if plan["recommended_extrapolated"] else "")
+                     + f" (from the {plan['recommended_basis']}).")
+    used = pl["depths_used"]
+    lines.append(f"Depth law T ~ K^s over depths {used[0]}-{used[-1]}: s = {pl['slope']:.2f} "
+                 f"+/- {pl['slope_se']:.2f}{_ci_text(pl['slope_ci'])}, R^2 = {pl['r2']:.2f}"
+                 + (f", {pl['n_censored']} censored (used as lower bounds)"
+                    if pl["n_censored"] else "") + ".")
+    without = pl.get("without_shallowest")
+    if without:
+        lines.append(f"Without the shallowest depth: s = {without['slope']:.2f}"
+                     f"{_ci_text(without['slope_ci'])}.")
+    if fit["depth_gain"]:
+        lines.append(f"Alpha = 1/(1 - s) = {pl['alpha']:.2f}{_ci_text(pl['alpha_ci'])}.")
+    else:
+        lines.append("Depth gives no gain here (s >= 0 or its interval includes 0); "
+                     "no alpha is reported.")
+    if rev["status"] == "observed":
+        lines.append(f"Reversal observed at K = {rev['depth']:.1f}{_ci_text(rev['depth_ci'], '.1f')}"
+                     f"; rising slope {rev['rising_slope']:.2f}"
+                     + (f"; smooth model minimum at K = {rev['smooth_depth']:.1f}"
+                        if rev["smooth_depth"] is not None else "") + ".")
+    else:
+        lines.append(f"Reversal: {rev['status'].replace('_', ' ')}: {rev['note']}.")
+    worth, opt = plan["last_depth_worth_adding"], plan["compute_optimal_depth"]
+    if worth["depth"] is not None:
+        lines.append(f"Last depth worth adding (next layer saves under "
+                     f"{100 * plan['save_fraction']:g} %): {worth['depth']}"
+                     f"{_ci_text(worth['ci'], '.0f')}"
+                     + (" [extrapolated]" if worth["extrapolated"] else "") + ".")
+    if opt["depth"] is not None:
+        lines.append(f"Compute-optimal depth (measured seconds per update): {opt['depth']}"
+                     f"{_ci_text(opt['ci'], '.0f')}"
+                     + (" [extrapolated]" if opt["extrapolated"] else "") + ".")
+    elif opt.get("note"):
+        lines.append(f"Compute-optimal depth: not given ({opt['note']}).")
+    diff = fit.get("diffusion")
+    if diff and diff.get("late_exponent_median") is not None:
+        alpha = (f"against alpha {diff['alpha']:.2f} from the depth law"
+                 if diff.get("alpha") is not None else "(no alpha from the depth law to compare)")
+        text = (f"Probes: late-phase displacement exponent {diff['late_exponent_median']:.2f} "
+                f"{alpha}")
+        if diff.get("snr_drop_db_median") is not None:
+            text += f"; gradient SNR falls {diff['snr_drop_db_median']:.0f} dB"
+        if diff.get("transition_step_median") is not None:
+            text += f" around step {diff['transition_step_median']:.0f}"
+        lines.append(text + ".")
+    if fit.get("lr_interaction"):
+        lines.append(f"Several learning-rate groups: the figures above are for the "
+                     f"{_describe(fit['group'])}; each group is fitted in by_learning_rate.")
+    if fit["warnings"]:
+        lines.append("Warnings:")
+        lines.extend(f"  - {w}" for w in fit["warnings"])
+    lines.append("These figures come from small proxy networks; the depth law of the big run "
+                 "may differ, so check a depth or two at full scale before committing.")
+    return "\n".join(lines)
