@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import math
 import time
-from typing import Callable
+from typing import Callable, Iterator
 
 import numpy as np
 import torch
@@ -27,8 +27,10 @@ from .records import CellSpec, RunResult
 
 ProgressFn = Callable[[int], None]
 
-#: Largest (n_seeds x rows x width) block evaluated at once on the full training set.
+#: Largest (n_seeds x rows x width) activation block of one evaluation pass (4 Mi values, 16 MB in float32).
 EVAL_BLOCK = 1 << 22
+#: Largest block of gathered minibatches held at once, in values (32 MB in float32).
+GATHER_BLOCK = 1 << 23
 
 
 class BatchStream:
@@ -57,109 +59,220 @@ class BatchStream:
 
 # --------------------------------------------------------------------------- batched maths
 
-def _act(name: str, z: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
-    """Activation and its derivative at z (both shaped like z)."""
+_aten = torch.ops.aten
+
+
+def _activate(name: str, z: torch.Tensor) -> torch.Tensor:
+    """The activation of z, in place unless its derivative needs z itself (gelu)."""
     if name == "tanh":
-        # tanh(x) = 2 sigmoid(2x) - 1: the same function, and sigmoid is far cheaper in this torch build
-        h = torch.sigmoid(z * 2.0).mul_(2.0).sub_(1.0)
-        return h, 1.0 - h * h
+        return z.tanh_()
     if name == "relu":
-        return torch.relu(z), (z > 0).to(z.dtype)
+        return z.relu_()
     if name == "sigmoid":
-        h = torch.sigmoid(z)
-        return h, h * (1.0 - h)
-    # exact gelu: x * Phi(x); derivative Phi(x) + x * phi(x)
-    cdf = 0.5 * (1.0 + torch.erf(z * (1.0 / math.sqrt(2.0))))
-    pdf = torch.exp(-0.5 * z * z) * (1.0 / math.sqrt(2.0 * math.pi))
-    return z * cdf, cdf + z * pdf
+        return z.sigmoid_()
+    return F.gelu(z)
 
 
-def _gradients(ws: list[torch.Tensor], bs: list[torch.Tensor], xb: torch.Tensor, yb: torch.Tensor,
-               act: str) -> list[torch.Tensor]:
-    """Mean cross-entropy gradients of every seed's minibatch.
+def _activation_grad(name: str, grad: torch.Tensor, h: torch.Tensor, z: torch.Tensor | None) -> torch.Tensor:
+    """grad * act'(z), from the layer's output h (z for gelu), with the kernels autograd itself uses."""
+    if name == "tanh":
+        return _aten.tanh_backward(grad, h)
+    if name == "relu":
+        return _aten.threshold_backward(grad, h, 0)
+    if name == "sigmoid":
+        return _aten.sigmoid_backward(grad, h)
+    return _aten.gelu_backward(grad, z)
+
+
+class _Stack:
+    """Every active seed's weights stacked along a leading axis, updated in place.
+
+    ws: per layer (n_seeds, fan_in, fan_out); bs: per layer (n_seeds, 1, fan_out). The transposed
+    views wts (and the output layer's bias) stay valid under in-place updates, so they are made
+    once here rather than at every step.
+    """
+
+    def __init__(self, ws: list[torch.Tensor], bs: list[torch.Tensor]) -> None:
+        self.ws, self.bs = ws, bs
+        self._views()
+
+    def _views(self) -> None:
+        self.wts = [w.transpose(1, 2) for w in self.ws]
+        self.b_out_t = self.bs[-1].transpose(1, 2)
+
+    @property
+    def n_seeds(self) -> int:
+        return self.ws[0].shape[0]
+
+    def keep(self, rows: torch.Tensor) -> None:
+        """Drop finished seeds: keep the given rows."""
+        self.ws[:] = [w.index_select(0, rows) for w in self.ws]
+        self.bs[:] = [b.index_select(0, rows) for b in self.bs]
+        self._views()
+
+    def logits(self, h: torch.Tensor) -> torch.Tensor:
+        """The output layer on h (n_seeds, rows, width), laid out class-major (n_seeds, n_classes, rows):
+        torch's CPU softmax and reductions are several times slower along a short last axis."""
+        return torch.baddbmm(self.b_out_t, self.wts[-1], h.transpose(1, 2))
+
+    def forward(self, x: torch.Tensor, act: str) -> tuple[list[torch.Tensor], list[torch.Tensor | None], torch.Tensor]:
+        """Every layer's input (x first), the pre-activations gelu's derivative needs, and the logits.
+
+        Args:
+            x: (n_seeds, rows, n_in).
+        """
+        hs: list[torch.Tensor] = [x]
+        zs: list[torch.Tensor | None] = []
+        for w, b in zip(self.ws[:-1], self.bs[:-1]):
+            z = torch.baddbmm(b, hs[-1], w)             # (n_seeds, rows, width)
+            zs.append(z if act == "gelu" else None)
+            hs.append(_activate(act, z))
+        return hs, zs, self.logits(hs[-1])
+
+    def backward(self, hs: list[torch.Tensor], zs: list[torch.Tensor | None], g: torch.Tensor, act: str,
+                 update: Callable[[int, torch.Tensor, torch.Tensor], None]) -> None:
+        """Walk from the output layer down, handing `update(layer, h, g)` each layer's input h and the
+        loss gradient g at its output. The gradient below a layer is taken before `update` changes it."""
+        for layer in range(len(self.ws) - 1, -1, -1):
+            below = None
+            if layer:
+                below = _activation_grad(act, torch.bmm(g, self.wts[layer]), hs[layer], zs[layer - 1])
+            update(layer, hs[layer], g)
+            g = below
+
+
+def _loss_grad(logits: torch.Tensor, target: torch.Tensor) -> torch.Tensor:
+    """d(cross-entropy summed over rows)/d(logits) = softmax - one-hot target.
 
     Args:
-        ws: per layer (n_seeds, fan_in, fan_out); bs: per layer (n_seeds, 1, fan_out).
-        xb: (n_seeds, batch, n_features); yb: (n_seeds, batch) class indices.
+        logits, target: (n_seeds, n_classes, rows).
 
     Returns:
-        [dW_1, ..., dW_L, db_1, ..., db_L] shaped like ws + bs.
+        (n_seeds, rows, n_classes), a transposed view.
     """
-    hs, ds = [xb], []
-    h = xb
-    for w, b in zip(ws[:-1], bs[:-1]):
-        h, d = _act(act, torch.baddbmm(b, h, w))      # (n_seeds, batch, width)
-        hs.append(h)
-        ds.append(d)
-    logits = torch.baddbmm(bs[-1], h, ws[-1])         # (n_seeds, batch, n_classes)
-    g = torch.softmax(logits, dim=2)
-    g.scatter_add_(2, yb.unsqueeze(2), torch.full(yb.shape + (1,), -1.0, dtype=g.dtype))
-    g.mul_(1.0 / xb.shape[1])
-    gw: list[torch.Tensor] = [None] * len(ws)  # type: ignore[list-item]
-    gb: list[torch.Tensor] = [None] * len(ws)  # type: ignore[list-item]
-    for layer in range(len(ws) - 1, -1, -1):
-        gw[layer] = torch.bmm(hs[layer].transpose(1, 2), g)
-        gb[layer] = g.sum(dim=1, keepdim=True)
-        if layer:
-            g = torch.bmm(g, ws[layer].transpose(1, 2)).mul_(ds[layer - 1])
-    return gw + gb
+    return torch.softmax(logits, dim=1).sub_(target).transpose(1, 2)
 
 
-def _evaluate(ws: list[torch.Tensor], bs: list[torch.Tensor], x: torch.Tensor, y: torch.Tensor,
-              act: str) -> tuple[np.ndarray, np.ndarray]:
-    """Mean cross-entropy and accuracy of every seed on all of (x, y), in row blocks."""
-    n_seeds, n_rows = ws[0].shape[0], x.shape[0]
-    width = max(w.shape[2] for w in ws)
+def _evaluate(stack: _Stack, x: torch.Tensor, y: torch.Tensor, act: str) -> tuple[np.ndarray, np.ndarray]:
+    """Mean cross-entropy and accuracy of every seed on all of (x, y), in row blocks of bounded size."""
+    n_seeds, n_rows = stack.n_seeds, x.shape[0]
+    width = max(w.shape[2] for w in stack.ws)
     step = max(1, EVAL_BLOCK // max(1, n_seeds * width))
     loss = torch.zeros(n_seeds, dtype=torch.float64)
     hits = torch.zeros(n_seeds, dtype=torch.float64)
+    # two activation buffers used in turn: a fresh large tensor per layer costs its page faults each time
+    scratch = torch.empty(2, n_seeds * min(step, n_rows) * width, dtype=x.dtype)
     for lo in range(0, n_rows, step):
         xc, yc = x[lo:lo + step], y[lo:lo + step]
-        h = torch.matmul(xc, ws[0]).add_(bs[0])       # (n_seeds, rows, fan_out)
-        for w, b in zip(ws[1:], bs[1:]):
-            h = torch.baddbmm(b, _act(act, h)[0], w)
-        lse = torch.logsumexp(h, dim=2)
-        picked = h.gather(2, yc.expand(n_seeds, -1).unsqueeze(2)).squeeze(2)
-        loss += (lse - picked).sum(dim=1).double()
-        hits += (h.argmax(dim=2) == yc).sum(dim=1).double()
+        h = xc.expand(n_seeds, -1, -1)                  # every seed sees the same rows
+        for i, (w, b) in enumerate(zip(stack.ws[:-1], stack.bs[:-1])):
+            out = scratch[i % 2, : n_seeds * len(yc) * w.shape[2]].view(n_seeds, len(yc), w.shape[2])
+            h = _activate(act, torch.baddbmm(b, h, w, out=out))     # (n_seeds, rows, width)
+        z = stack.logits(h)                             # (n_seeds, n_classes, rows)
+        top = z.amax(dim=1, keepdim=True)
+        picked = z.gather(1, yc.view(1, 1, -1).expand(n_seeds, 1, -1))
+        lse = (z - top).exp_().sum(dim=1, keepdim=True).log_()
+        loss += (lse - (picked - top)).sum(dim=(1, 2)).double()
+        hits += (picked >= top).sum(dim=(1, 2)).double()
     return (loss / n_rows).numpy(), (hits / n_rows).numpy()
 
 
 class _Optimizer:
-    """SGD (optionally with momentum) or Adam on stacked tensors, with torch.optim's update rules."""
+    """torch.optim's SGD (optionally with momentum) and Adam update rules, on a `_Stack`.
 
-    def __init__(self, cfg: TrainConfig, lr: float, params: list[torch.Tensor]) -> None:
+    `update(layer, h, g)` takes a layer's input h (n_seeds, batch, fan_in) and the loss gradient at
+    its output g (n_seeds, batch, fan_out), summed over the batch: the mean gradients are
+    h^T g / batch and 1^T g / batch. Plain SGD folds that product into the update itself (one
+    baddbmm_ per tensor, no gradient buffer); momentum folds it into the velocity.
+    """
+
+    def __init__(self, cfg: TrainConfig, lr: float, stack: _Stack, batch: int) -> None:
         self.kind, self.lr, self.mu = cfg.optimizer, lr, cfg.momentum
-        self.params = params
-        self.state: list[list[torch.Tensor]] = [[] for _ in params]
+        self.stack = stack
+        self.scale = 1.0 / batch
+        self.ones = torch.ones(stack.n_seeds, 1, batch, dtype=stack.ws[0].dtype)
+        n_state = 2 if self.kind == "adam" else int(self.mu > 0)
+        self.state = [[torch.zeros_like(p) for _ in range(n_state)]        # W_1, b_1, W_2, b_2, ...
+                      for w, b in zip(stack.ws, stack.bs) for p in (w, b)]
         self.t = 0
+        self.update = self._sgd if n_state == 0 else self._general
 
-    def step(self, grads: list[torch.Tensor]) -> None:
+    def step(self, x: torch.Tensor, target: torch.Tensor, act: str) -> None:
+        """One update of every active seed on its minibatch (x, class-major one-hot target)."""
+        hs, zs, logits = self.stack.forward(x, act)
         self.t += 1
-        for i, (p, g) in enumerate(zip(self.params, grads)):
-            st = self.state[i]
+        self.stack.backward(hs, zs, _loss_grad(logits, target), act, self.update)
+
+    def _sgd(self, layer: int, h: torch.Tensor, g: torch.Tensor) -> None:
+        alpha = -self.lr * self.scale
+        self.stack.ws[layer].baddbmm_(h.transpose(1, 2), g, alpha=alpha)
+        self.stack.bs[layer].baddbmm_(self.ones, g, alpha=alpha)
+
+    def _general(self, layer: int, h: torch.Tensor, g: torch.Tensor) -> None:
+        lr, scale = self.lr, self.scale
+        for i, (p, left) in enumerate(((self.stack.ws[layer], h.transpose(1, 2)), (self.stack.bs[layer], self.ones))):
+            st = self.state[2 * layer + i]
             if self.kind == "adam":
                 b1, b2, eps = 0.9, 0.999, 1e-8
-                if not st:
-                    st += [torch.zeros_like(p), torch.zeros_like(p)]
-                st[0].mul_(b1).add_(g, alpha=1 - b1)
-                st[1].mul_(b2).addcmul_(g, g, value=1 - b2)
-                denom = (st[1] / (1 - b2 ** self.t)).sqrt_().add_(eps)
-                p.addcdiv_(st[0], denom, value=-self.lr / (1 - b1 ** self.t))
-            elif self.mu > 0:
-                if not st:
-                    st.append(g.clone())
-                else:
-                    st[0].mul_(self.mu).add_(g)
-                p.add_(st[0], alpha=-self.lr)
+                grad = torch.bmm(left, g).mul_(scale)
+                st[0].lerp_(grad, 1 - b1)
+                st[1].mul_(b2).addcmul_(grad, grad, value=1 - b2)
+                denom = (st[1].sqrt() / (1 - b2 ** self.t) ** 0.5).add_(eps)
+                p.addcdiv_(st[0], denom, value=-lr / (1 - b1 ** self.t))
             else:
-                p.add_(g, alpha=-self.lr)
+                st[0].baddbmm_(left, g, beta=self.mu, alpha=scale)     # velocity = mu * velocity + grad
+                p.add_(st[0], alpha=-lr)
 
     def keep(self, rows: torch.Tensor) -> None:
-        """Drop finished seeds (keep the given rows) from parameters and state."""
-        for i, p in enumerate(self.params):
-            self.params[i] = p.index_select(0, rows)
-            self.state[i] = [s.index_select(0, rows) for s in self.state[i]]
+        """Drop finished seeds (keep the given rows) from weights and state."""
+        self.stack.keep(rows)
+        self.ones = self.ones[: len(rows)]
+        self.state = [[s.index_select(0, rows) for s in st] for st in self.state]
+
+
+def _draw_gradients(stack: _Stack, x: torch.Tensor, target: torch.Tensor, act: str,
+                    n_draws: int) -> list[torch.Tensor]:
+    """Weight gradients of `n_draws` minibatches per seed at the current weights, weights untouched.
+
+    Args:
+        x: (n_seeds, n_draws * batch, n_in); target: (n_seeds, n_classes, n_draws * batch);
+            each draw's rows consecutive.
+
+    Returns:
+        Per layer (n_draws, n_seeds, fan_in, fan_out): one forward and backward pass serves all
+        draws, and each draw's gradient is split out at the weight-gradient product.
+    """
+    n_seeds, batch = x.shape[0], x.shape[1] // n_draws
+    grads: list[torch.Tensor] = [torch.empty(0)] * len(stack.ws)
+
+    def collect(layer: int, h: torch.Tensor, g: torch.Tensor) -> None:
+        h = h.reshape(n_seeds * n_draws, batch, h.shape[2])
+        g = g.reshape(n_seeds * n_draws, batch, g.shape[2])
+        gw = torch.bmm(h.transpose(1, 2), g).mul_(1.0 / batch)
+        grads[layer] = gw.view(n_seeds, n_draws, *gw.shape[1:]).transpose(0, 1)
+
+    hs, zs, logits = stack.forward(x, act)
+    stack.backward(hs, zs, _loss_grad(logits, target), act, collect)
+    return grads
+
+
+def _minibatches(x: torch.Tensor, onehot: torch.Tensor, rows: np.ndarray) -> Iterator[tuple[torch.Tensor, torch.Tensor]]:
+    """Each step's inputs (n_seeds, batch, n_in) and class-major one-hot targets (n_seeds, n_classes, batch).
+
+    Gathers many steps with one index op, laid out so that each step's tensors are contiguous.
+
+    Args:
+        x: (n_rows, n_in); onehot: (n_rows, n_classes); rows: (n_seeds, n_steps, batch) row indices.
+    """
+    n_seeds, n_steps, batch = rows.shape
+    per_gather = max(1, GATHER_BLOCK // (n_seeds * batch * (x.shape[1] + onehot.shape[1])))
+    for lo in range(0, n_steps, per_gather):
+        part = torch.from_numpy(rows[:, lo:lo + per_gather].transpose(1, 0, 2).reshape(-1))
+        n = len(part) // (n_seeds * batch)
+        xs = x.index_select(0, part).view(n, n_seeds, batch, -1)
+        targets = onehot.index_select(0, part).view(n, n_seeds, batch, -1).transpose(2, 3).contiguous()
+        for j in range(n):
+            yield xs[j], targets[j]
 
 
 # --------------------------------------------------------------------------- one cell
@@ -176,74 +289,92 @@ def stacked_weights(model: ModelConfig, n_in: int, depth: int, n_out: int, seeds
 
 def train_cell(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: ProbeConfig,
                data: Dataset, *, progress: ProgressFn | None = None,
-               dtype: torch.dtype = torch.float32) -> list[RunResult]:
+               dtype: torch.dtype = torch.float32, eval_rows: int | None = None) -> list[RunResult]:
     """Train every seed of `spec` to convergence, censoring or divergence.
 
     Args:
         spec: depth, seeds, learning rate (and an early-censoring budget) of the cell.
         model, train, probes: the matching sections of the sweep file.
-        data: the task; the full training set is evaluated every `train.eval_every` updates.
+        data: the task; the training loss is evaluated every `train.eval_every` updates.
         progress: called with seed-updates done (a finished seed's unused budget counts as done).
+        dtype: float32 (default) or float64.
+        eval_rows: evaluate the training loss and accuracy on a fixed subset of this many training
+            rows (the same rows for every seed and every evaluation) when the set is larger;
+            None: `train.eval_rows` if the config has it, else the full training set.
 
     Returns:
         One `RunResult` per seed, in the order of `spec.seeds`.
     """
+    with torch.inference_mode():
+        return _train_cell(spec, model, train, probes, data, progress, dtype,
+                           eval_rows if eval_rows is not None else getattr(train, "eval_rows", None))
+
+
+def _eval_subset(n_rows: int, eval_rows: int | None) -> torch.Tensor | None:
+    """Row indices of the fixed evaluation subset, or None for all rows."""
+    if eval_rows is None or eval_rows >= n_rows:
+        return None
+    rng = np.random.default_rng(0xE7A1)
+    return torch.from_numpy(np.sort(rng.choice(n_rows, size=eval_rows, replace=False)))
+
+
+def _train_cell(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: ProbeConfig, data: Dataset,
+                progress: ProgressFn | None, dtype: torch.dtype, eval_rows: int | None) -> list[RunResult]:
     t_start = time.perf_counter()
     x = torch.from_numpy(data.x_train).to(dtype)
     y = torch.from_numpy(data.y_train)
     x_val = torch.from_numpy(data.x_val).to(dtype)
     y_val = torch.from_numpy(data.y_val)
     n_rows, n_in = x.shape
+    onehot = F.one_hot(y, data.n_classes).to(dtype)
+    subset = _eval_subset(n_rows, eval_rows)
+    x_eval, y_eval = (x, y) if subset is None else (x[subset], y[subset])
+    act = model.activation
     criterion = Criterion.from_config(train.converge_when)
     budget = min(train.max_updates, spec.stop_after or train.max_updates)
     seeds = spec.seeds
-    n_seeds = len(seeds)
 
-    ws, bs = stacked_weights(model, n_in, spec.depth, data.n_classes, seeds, dtype)
-    n_layers = len(ws)
-    w0 = [w.clone() for w in ws]
-    opt = _Optimizer(train, spec.learning_rate, ws + bs)
+    stack = _Stack(*stacked_weights(model, n_in, spec.depth, data.n_classes, seeds, dtype))
+    w0 = [w.clone() for w in stack.ws]
     streams = [BatchStream(s, n_rows, train.batch_size) for s in seeds]
+    opt = _Optimizer(train, spec.learning_rate, stack, streams[0].batch)
     probe_rngs = [np.random.default_rng([int(s), 0x5A1]) for s in seeds]
     probe_at = set(log_spaced_steps(budget, probes.n_points)) if (probes.displacement or probes.snr) else set()
 
-    active = list(range(n_seeds))                      # positions in `seeds` still training
+    active = list(range(len(seeds)))                   # positions in `seeds` still training
     curves: list[list[tuple[int, float]]] = [[] for _ in seeds]
     probe_log: list[list[tuple[int, list[float], list[float]]]] = [[] for _ in seeds]
-    seat_time = np.zeros(n_seeds)
+    seat_time = np.zeros(len(seeds))
     ended: dict[int, dict] = {}
     step = 0
 
     def probe(step_now: int) -> None:
-        params = opt.params
-        disp = [(params[i] - w0[i]).flatten(1).norm(dim=1).double().numpy() for i in range(n_layers)]
-        snr = [np.full(len(active), math.nan)] * n_layers
+        disp = [(w - w_init).flatten(1).norm(dim=1).double().numpy() for w, w_init in zip(stack.ws, w0)]
+        snr = [np.full(len(active), math.nan)] * len(w0)
         if probes.snr:
+            # each seed's window of minibatches, drawn at the current weights, as one long batch
             rows = np.stack([probe_rngs[a].integers(0, n_rows, (probes.snr_window, streams[a].batch)) for a in active])
-            idx = torch.from_numpy(rows)                # (n_active, window, batch)
-            window = [_gradients(params[:n_layers], params[n_layers:], x[idx[:, j]], y[idx[:, j]],
-                                 model.activation)[:n_layers] for j in range(probes.snr_window)]
-            snr = [gradient_snr_db(np.stack([g[i].double().numpy() for g in window])) for i in range(n_layers)]
+            drawn = torch.from_numpy(rows.reshape(len(active), -1))             # (n_active, window * batch)
+            grads = _draw_gradients(stack, x[drawn], onehot[drawn].transpose(1, 2), act, probes.snr_window)
+            snr = [gradient_snr_db(g.double().numpy()) for g in grads]
         for k, a in enumerate(active):
             probe_log[a].append((step_now, [float(d[k]) for d in disp], [float(s[k]) for s in snr]))
 
     while active:
         t_block = time.perf_counter()
         n = min(train.eval_every - step % train.eval_every, budget - step)
-        idx = torch.from_numpy(np.stack([streams[a].take(n) for a in active]))   # (n_active, n, batch)
-        for j in range(n):
+        rows = np.stack([streams[a].take(n) for a in active])       # (n_active, n, batch)
+        for xb, target in _minibatches(x, onehot, rows):
             if step in probe_at:
                 probe(step)
-            params = opt.params
-            opt.step(_gradients(params[:n_layers], params[n_layers:], x[idx[:, j]], y[idx[:, j]], model.activation))
+            opt.step(xb, target, act)
             step += 1
         if step in probe_at and step == budget:
             probe(step)
-        params = opt.params
-        loss, acc = _evaluate(params[:n_layers], params[n_layers:], x, y, model.activation)
+        loss, acc = _evaluate(stack, x_eval, y_eval, act)
         val_acc = np.full(len(active), math.nan)
         if criterion.needs_validation and len(y_val):
-            val_acc = _evaluate(params[:n_layers], params[n_layers:], x_val, y_val, model.activation)[1]
+            val_acc = _evaluate(stack, x_val, y_val, act)[1]
         done, keep = [], []
         for k, a in enumerate(active):
             curves[a].append((step, float(loss[k])))
@@ -255,39 +386,43 @@ def train_cell(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: P
         if done:
             if len(y_val):
                 rows_done = torch.tensor(done)
-                sub = [p.index_select(0, rows_done) for p in params]
-                val_done = _evaluate(sub[:n_layers], sub[n_layers:], x_val, y_val, model.activation)[1]
-                for k, v in zip(done, val_done):
+                finished = _Stack([w.index_select(0, rows_done) for w in stack.ws],
+                                  [b.index_select(0, rows_done) for b in stack.bs])
+                for k, v in zip(done, _evaluate(finished, x_val, y_val, act)[1]):
                     ended[active[k]]["val"] = float(v)
             rows_keep = torch.tensor(keep, dtype=torch.long)
-            opt.keep(rows_keep)
+            opt.keep(rows_keep)                         # finished seeds leave the batch
             w0 = [w.index_select(0, rows_keep) for w in w0]
         if progress is not None:
             progress(n * len(active) + len(done) * (budget - step))
         active = [active[k] for k in keep]
 
-    setup = (time.perf_counter() - t_start - seat_time.sum()) / n_seeds
+    setup = (time.perf_counter() - t_start - seat_time.sum()) / len(seeds)
+    return [_result(spec, model, train, probes, data, seed, ended[a], float(seat_time[a] + setup),
+                    curves[a], probe_log[a])
+            for a, seed in enumerate(seeds)]
+
+
+def _result(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: ProbeConfig, data: Dataset,
+            seed: int, end: dict, wall: float, curve: list[tuple[int, float]],
+            plog: list[tuple[int, list[float], list[float]]]) -> RunResult:
+    """One seed's `RunResult` from what its cell recorded."""
     widths = model.widths(spec.depth)
-    results = []
-    for a, seed in enumerate(seeds):
-        e = ended[a]
-        wall = float(seat_time[a] + setup)
-        plog = probe_log[a]
-        results.append(RunResult(
-            depth=spec.depth, width=widths[0], seed=seed, learning_rate=spec.learning_rate,
-            status=e["status"], iterations=e["iterations"], wall_seconds=wall,
-            seconds_per_update=wall / max(1, e["iterations"]),
-            final_train_loss=e["loss"], final_train_accuracy=e["acc"],
-            validation_accuracy=e.get("val", math.nan),
-            n_params=count_params(n_in, widths, data.n_classes),
-            activation=model.activation, init=model.init, optimizer=train.optimizer,
-            lr_mode=spec.lr_mode, cell_id=spec.cell_id,
-            eval_steps=tuple(s for s, _ in curves[a]), train_loss=tuple(v for _, v in curves[a]),
-            probe_steps=tuple(p[0] for p in plog),
-            displacement=tuple(tuple(p[1][i] for p in plog) for i in range(n_layers)) if probes.displacement and plog else (),
-            snr_db=tuple(tuple(p[2][i] for p in plog) for i in range(n_layers)) if probes.snr and plog else (),
-        ))
-    return results
+    n_layers = len(widths) + 1
+    return RunResult(
+        depth=spec.depth, width=widths[0], seed=seed, learning_rate=spec.learning_rate,
+        status=end["status"], iterations=end["iterations"], wall_seconds=wall,
+        seconds_per_update=wall / max(1, end["iterations"]),
+        final_train_loss=end["loss"], final_train_accuracy=end["acc"],
+        validation_accuracy=end.get("val", math.nan),
+        n_params=count_params(data.n_features, widths, data.n_classes),
+        activation=model.activation, init=model.init, optimizer=train.optimizer,
+        lr_mode=spec.lr_mode, cell_id=spec.cell_id,
+        eval_steps=tuple(s for s, _ in curve), train_loss=tuple(v for _, v in curve),
+        probe_steps=tuple(p[0] for p in plog),
+        displacement=tuple(tuple(p[1][i] for p in plog) for i in range(n_layers)) if probes.displacement and plog else (),
+        snr_db=tuple(tuple(p[2][i] for p in plog) for i in range(n_layers)) if probes.snr and plog else (),
+    )
 
 
 # --------------------------------------------------------------------------- the plain loop
