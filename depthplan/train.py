@@ -256,6 +256,27 @@ def _draw_gradients(stack: _Stack, x: torch.Tensor, target: torch.Tensor, act: s
     return grads
 
 
+def _gradient_snr(stack: _Stack, x: torch.Tensor, onehot: torch.Tensor, rows: np.ndarray, act: str) -> list[np.ndarray]:
+    """Per layer, every seed's gradient SNR in dB over its window of minibatches at the current weights.
+
+    Args:
+        rows: (n_seeds, n_draws, batch) row indices of each seed's window.
+
+    Seeds go in groups, so that a group's activations (all layers, whole window) and per-draw
+    weight gradients together stay within EVAL_BLOCK values.
+    """
+    n_seeds, n_draws, batch = rows.shape
+    per_seed = n_draws * sum((batch + w.shape[1]) * w.shape[2] for w in stack.ws)
+    group = max(1, EVAL_BLOCK // per_seed)
+    parts = []
+    for lo in range(0, n_seeds, group):
+        sub = _Stack([w[lo:lo + group] for w in stack.ws], [b[lo:lo + group] for b in stack.bs])
+        drawn = torch.from_numpy(rows[lo:lo + group].reshape(len(sub.ws[0]), -1))   # (group, window * batch)
+        grads = _draw_gradients(sub, x[drawn], onehot[drawn].transpose(1, 2), act, n_draws)
+        parts.append([gradient_snr_db(g.numpy()) for g in grads])
+    return [np.concatenate(layer) for layer in zip(*parts)]
+
+
 def _minibatches(x: torch.Tensor, onehot: torch.Tensor, rows: np.ndarray) -> Iterator[tuple[torch.Tensor, torch.Tensor]]:
     """Each step's inputs (n_seeds, batch, n_in) and class-major one-hot targets (n_seeds, n_classes, batch).
 
@@ -289,7 +310,8 @@ def stacked_weights(model: ModelConfig, n_in: int, depth: int, n_out: int, seeds
 
 def train_cell(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: ProbeConfig,
                data: Dataset, *, progress: ProgressFn | None = None,
-               dtype: torch.dtype = torch.float32, eval_rows: int | None = None) -> list[RunResult]:
+               dtype: torch.dtype = torch.float32, eval_rows: int | None = None,
+               threads: int | None = 1) -> list[RunResult]:
     """Train every seed of `spec` to convergence, censoring or divergence.
 
     Args:
@@ -301,13 +323,23 @@ def train_cell(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: P
         eval_rows: evaluate the training loss and accuracy on a fixed subset of this many training
             rows (the same rows for every seed and every evaluation) when the set is larger;
             None: `train.eval_rows` if the config has it, else the full training set.
+        threads: torch's intra-op threads while this cell trains (restored after); None leaves
+            the setting alone. One is fastest: the operations are too small to share, and a
+            second thread waiting on a core that another process holds slows training many times.
 
     Returns:
         One `RunResult` per seed, in the order of `spec.seeds`.
     """
-    with torch.inference_mode():
-        return _train_cell(spec, model, train, probes, data, progress, dtype,
-                           eval_rows if eval_rows is not None else getattr(train, "eval_rows", None))
+    before = torch.get_num_threads()
+    if threads is not None:
+        torch.set_num_threads(threads)
+    try:
+        with torch.inference_mode():
+            return _train_cell(spec, model, train, probes, data, progress, dtype,
+                               eval_rows if eval_rows is not None else getattr(train, "eval_rows", None))
+    finally:
+        if threads is not None:
+            torch.set_num_threads(before)
 
 
 def _eval_subset(n_rows: int, eval_rows: int | None) -> torch.Tensor | None:
@@ -352,11 +384,8 @@ def _train_cell(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: 
         disp = [(w - w_init).flatten(1).norm(dim=1).double().numpy() for w, w_init in zip(stack.ws, w0)]
         snr = [np.full(len(active), math.nan)] * len(w0)
         if probes.snr:
-            # each seed's window of minibatches, drawn at the current weights, as one long batch
             rows = np.stack([probe_rngs[a].integers(0, n_rows, (probes.snr_window, streams[a].batch)) for a in active])
-            drawn = torch.from_numpy(rows.reshape(len(active), -1))             # (n_active, window * batch)
-            grads = _draw_gradients(stack, x[drawn], onehot[drawn].transpose(1, 2), act, probes.snr_window)
-            snr = [gradient_snr_db(g.double().numpy()) for g in grads]
+            snr = _gradient_snr(stack, x, onehot, rows, act)
         for k, a in enumerate(active):
             probe_log[a].append((step_now, [float(d[k]) for d in disp], [float(s[k]) for s in snr]))
 
@@ -428,15 +457,23 @@ def _result(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: Prob
 # --------------------------------------------------------------------------- the plain loop
 
 def train_plain(spec: CellSpec, model: ModelConfig, train: TrainConfig, data: Dataset, *,
-                n_updates: int | None = None, dtype: torch.dtype = torch.float32) -> list[list[float]]:
+                n_updates: int | None = None, dtype: torch.dtype = torch.float32,
+                until_converged: bool = False) -> list[list[float]]:
     """Reference: each seed alone, `nn.Sequential` + `torch.optim`, same init and batch order.
 
-    No convergence test: runs `n_updates` (default `train.max_updates`) updates and
-    returns each seed's full-training-set loss after every `train.eval_every` updates.
-    Used to check the batched trainer and as the benchmark's baseline.
+    Runs `n_updates` (default `train.max_updates`) updates and returns each seed's
+    full-training-set loss after every `train.eval_every` updates. Used to check the
+    batched trainer and as the benchmark's baseline.
+
+    Args:
+        until_converged: stop a seed at the first evaluation where `train.converge_when`
+            holds or its loss is not finite, as `train_cell` does; its list ends there.
     """
     x = torch.from_numpy(data.x_train).to(dtype)
     y = torch.from_numpy(data.y_train)
+    x_val = torch.from_numpy(data.x_val).to(dtype)
+    y_val = torch.from_numpy(data.y_val)
+    criterion = Criterion.from_config(train.converge_when)
     n_updates = n_updates or train.max_updates
     out = []
     for seed in spec.seeds:
@@ -454,6 +491,14 @@ def train_plain(spec: CellSpec, model: ModelConfig, train: TrainConfig, data: Da
             opt.step()
             if step % train.eval_every == 0:
                 with torch.no_grad():
-                    losses.append(float(F.cross_entropy(net(x), y)))
+                    logits = net(x)
+                    losses.append(float(F.cross_entropy(logits, y)))
+                    if until_converged:
+                        acc = float((logits.argmax(dim=1) == y).double().mean())
+                        val = math.nan
+                        if criterion.needs_validation and len(y_val):
+                            val = float((net(x_val).argmax(dim=1) == y_val).double().mean())
+                        if verdict(criterion, step, n_updates, losses[-1], acc, val) is not None:
+                            break
         out.append(losses)
     return out

@@ -1,0 +1,225 @@
+"""The batched trainer against a plain per-seed PyTorch loop, seeds leaving the batch, probes, memory."""
+from __future__ import annotations
+
+import json
+import math
+import subprocess
+import sys
+import textwrap
+from dataclasses import replace
+from pathlib import Path
+
+import numpy as np
+import pytest
+import torch
+import torch.nn.functional as F
+
+from depthplan.config import ConvergeConfig, DataConfig, ModelConfig, ProbeConfig, TrainConfig
+from depthplan.datasets import load_dataset
+from depthplan.models import build_mlp
+from depthplan.records import CellSpec
+from depthplan.train import (BatchStream, _draw_gradients, _eval_subset, _Stack, stacked_weights, train_cell,
+                             train_plain)
+
+NO_PROBES = ProbeConfig(displacement=False, snr=False)
+NEVER = ConvergeConfig(train_loss_below=1e-12)
+
+
+@pytest.fixture(scope="module")
+def data():
+    return load_dataset(DataConfig(source="synthetic", n_samples=400, n_features=12, n_classes=3))
+
+
+def _train(n_updates: int = 120, **kw) -> TrainConfig:
+    return TrainConfig(**{"learning_rate": (0.05,), "max_updates": n_updates, "eval_every": 20,
+                          "converge_when": NEVER, **kw})
+
+
+def _curves(results) -> np.ndarray:
+    return np.array([r.train_loss for r in results])
+
+
+# --------------------------------------------------------------------------- equal to the plain loop
+
+OPTIMIZERS = {"sgd": dict(optimizer="sgd"), "momentum": dict(optimizer="sgd", momentum=0.9),
+              "adam": dict(optimizer="adam")}
+RATES = {"sgd": 0.05, "momentum": 0.01, "adam": 0.005}
+
+
+@pytest.mark.parametrize("dtype, rtol", [(torch.float64, 1e-12), (torch.float32, 1e-4)])
+@pytest.mark.parametrize("name", OPTIMIZERS)
+def test_every_seed_follows_the_plain_loop(data, name, dtype, rtol) -> None:
+    # reference: nn.Sequential + autograd + torch.optim.SGD / torch.optim.Adam update rules, seed by seed
+    lr = RATES[name]
+    spec = CellSpec(depth=3, seeds=(0, 1, 2), learning_rate=lr)
+    model = ModelConfig(width=16)
+    train = _train(learning_rate=(lr,), **OPTIMIZERS[name])
+    batched = _curves(train_cell(spec, model, train, NO_PROBES, data, dtype=dtype))
+    plain = np.array(train_plain(spec, model, train, data, dtype=dtype))
+    assert batched.shape == plain.shape == (3, 6)
+    np.testing.assert_allclose(batched, plain, rtol=rtol)
+    assert np.all(plain[:, -1] < plain[:, 0])              # it trained: the loss fell
+
+
+@pytest.mark.parametrize("activation", ["tanh", "relu", "gelu", "sigmoid"])
+def test_hand_written_backward_matches_autograd_for_every_activation(data, activation) -> None:
+    # reference: torch.autograd through nn.Tanh / nn.ReLU / nn.GELU / nn.Sigmoid
+    spec = CellSpec(depth=2, seeds=(3, 4), learning_rate=0.05)
+    model = ModelConfig(width=8, activation=activation)
+    train = _train(60)
+    batched = _curves(train_cell(spec, model, train, NO_PROBES, data, dtype=torch.float64))
+    np.testing.assert_allclose(batched, train_plain(spec, model, train, data, dtype=torch.float64), rtol=1e-12)
+
+
+def test_snr_draws_match_autograd_gradients_draw_by_draw(data) -> None:
+    # reference: torch.autograd weight gradients of nn.Sequential, one minibatch at a time
+    model, seeds, n_draws, batch = ModelConfig(width=8), (0, 1), 3, 5
+    x = torch.from_numpy(data.x_train).double()
+    y = torch.from_numpy(data.y_train)
+    stack = _Stack(*stacked_weights(model, x.shape[1], 2, data.n_classes, seeds, torch.float64))
+    rows = torch.arange(len(seeds) * n_draws * batch).view(len(seeds), -1) * 7 % len(y)
+    onehot = F.one_hot(y, data.n_classes).double()
+    grads = _draw_gradients(stack, x[rows], onehot[rows].transpose(1, 2), "tanh", n_draws)
+    for k, seed in enumerate(seeds):
+        net = build_mlp(model, x.shape[1], 2, data.n_classes, seed, torch.float64)
+        linears = [m for m in net if isinstance(m, torch.nn.Linear)]
+        for j in range(n_draws):
+            part = rows[k, j * batch:(j + 1) * batch]
+            net.zero_grad()
+            F.cross_entropy(net(x[part]), y[part]).backward()
+            for layer, lin in enumerate(linears):
+                np.testing.assert_allclose(grads[layer][j, k].numpy(), lin.weight.grad.T.numpy(), rtol=1e-10, atol=1e-14)
+
+
+# --------------------------------------------------------------------------- seeds leaving the batch
+
+def test_a_seed_that_converges_leaves_and_the_others_train_as_if_alone(data, monkeypatch) -> None:
+    model, seeds = ModelConfig(width=16), (0, 1, 2)
+    free = _curves(train_cell(CellSpec(2, seeds, 0.05), model, _train(200), NO_PROBES, data, dtype=torch.float64))
+    # a threshold the fastest seed meets by the second evaluation while the others are still above it
+    fast = int(np.argmin(free[:, 1]))
+    slowest_others = min(free[s, :2].min() for s in range(3) if s != fast)
+    assert free[fast, 1] < slowest_others
+    train = _train(200, converge_when=ConvergeConfig(train_loss_below=float(free[fast, 1] + slowest_others) / 2))
+
+    widths_seen: list[int] = []
+    forward = _Stack.forward
+    monkeypatch.setattr(_Stack, "forward", lambda self, x, act: (widths_seen.append(x.shape[0]), forward(self, x, act))[1])
+    together = train_cell(CellSpec(2, seeds, 0.05), model, train, NO_PROBES, data, dtype=torch.float64)
+    assert together[fast].status == "converged" and together[fast].iterations <= 40
+    assert widths_seen[0] == 3 and min(widths_seen) < 3    # the batch shrank once a seed was done
+
+    for k, seed in enumerate(seeds):
+        alone = train_cell(CellSpec(2, (seed,), 0.05), model, train, NO_PROBES, data, dtype=torch.float64)[0]
+        assert (alone.status, alone.iterations, alone.eval_steps) == (together[k].status, together[k].iterations,
+                                                                      together[k].eval_steps)
+        np.testing.assert_allclose(alone.train_loss, together[k].train_loss, rtol=1e-12)
+        # reference: the plain per-seed loop stopping at the same rule
+        plain = train_plain(CellSpec(2, (seed,), 0.05), model, train, data, dtype=torch.float64, until_converged=True)
+        assert len(plain[0]) * train.eval_every == alone.iterations
+
+
+def test_a_diverging_seed_is_marked_and_leaves_the_others_alone(data) -> None:
+    model, train = ModelConfig(width=8, activation="relu", init_gain=3.0), _train(100, learning_rate=(1e3,))
+    results = train_cell(CellSpec(2, (0, 1), 1e3), model, train, NO_PROBES, data)   # float32 overflows
+    bad = [r for r in results if r.status == "diverged"]
+    assert len(bad) == 1 and bad[0].iterations == 20 and not math.isfinite(bad[0].final_train_loss)
+    good = next(r for r in results if r.status != "diverged")
+    alone = train_cell(CellSpec(2, (good.seed,), 1e3), model, train, NO_PROBES, data)[0]
+    assert good.iterations == alone.iterations == 100
+    np.testing.assert_allclose(good.train_loss, alone.train_loss, rtol=1e-5)
+
+
+def test_results_depend_on_the_seed_alone(data) -> None:
+    model, train = ModelConfig(width=8), _train(80)
+    a = train_cell(CellSpec(2, (5, 7), 0.05), model, train, ProbeConfig(n_points=5, snr_window=4), data)
+    b = train_cell(CellSpec(2, (5, 7), 0.05), model, train, ProbeConfig(n_points=5, snr_window=4), data)
+    c = train_cell(CellSpec(2, (7, 9, 5), 0.05), model, train, ProbeConfig(n_points=5, snr_window=4), data)
+    for r, s in zip(a, b):
+        assert (r.train_loss, r.displacement, r.snr_db) == (s.train_loss, s.displacement, s.snr_db)
+    np.testing.assert_allclose(a[0].train_loss, c[2].train_loss, rtol=1e-5)   # seed 5, other company
+    np.testing.assert_allclose(a[1].displacement, c[0].displacement, rtol=1e-5)
+
+
+# --------------------------------------------------------------------------- records, probes, options
+
+def test_records_probes_and_progress(data) -> None:
+    done: list[int] = []
+    spec = CellSpec(depth=3, seeds=(0, 1), learning_rate=0.05)
+    results = train_cell(spec, ModelConfig(width=8), _train(100), ProbeConfig(n_points=6, snr_window=4), data,
+                         progress=done.append)
+    assert sum(done) == 2 * 100
+    for r in results:
+        assert r.status == "censored" and r.iterations == 100 and r.eval_steps == (20, 40, 60, 80, 100)
+        assert r.n_params == 12 * 8 + 8 + 2 * (8 * 8 + 8) + 8 * 3 + 3
+        assert len(r.displacement) == len(r.snr_db) == 4                      # one series per layer
+        assert all(len(d) == len(r.probe_steps) for d in r.displacement + r.snr_db)
+        assert r.probe_steps[0] == 1 and r.probe_steps[-1] == 100
+        assert all(np.diff(d).min() > -1e-6 for d in r.displacement[:1])    # the first layer moves away
+        assert all(math.isfinite(v) for d in r.snr_db for v in d)
+        assert 0.0 <= r.validation_accuracy <= 1.0 and r.wall_seconds > 0
+
+
+def test_threads_are_restored(data) -> None:
+    before = torch.get_num_threads()
+    train_cell(CellSpec(1, (0,), 0.05), ModelConfig(width=4), _train(20), NO_PROBES, data, threads=1)
+    assert torch.get_num_threads() == before
+
+
+def test_evaluation_subset_is_fixed_and_leaves_training_alone(data) -> None:
+    n_rows = len(data.y_train)
+    sub = _eval_subset(n_rows, 50)
+    assert len(sub) == 50 and len(set(sub.tolist())) == 50 and torch.equal(sub, _eval_subset(n_rows, 50))
+    assert _eval_subset(n_rows, n_rows) is None and _eval_subset(n_rows, None) is None
+    spec, model = CellSpec(2, (0, 1), 0.05), ModelConfig(width=8)
+    probes = ProbeConfig(snr=False, n_points=5)
+    full = train_cell(spec, model, _train(60), probes, data, dtype=torch.float64)
+    part = train_cell(spec, model, _train(60), probes, data, dtype=torch.float64, eval_rows=50)
+    every = train_cell(spec, model, _train(60), probes, data, dtype=torch.float64, eval_rows=n_rows)
+    assert [r.train_loss for r in every] == [r.train_loss for r in full]
+    assert [r.displacement for r in part] == [r.displacement for r in full]   # same training
+    assert all(p.train_loss != f.train_loss for p, f in zip(part, full))      # other rows scored
+
+
+def test_batch_stream_shuffles_whole_epochs() -> None:
+    s = BatchStream(seed=3, n_rows=50, batch_size=8)
+    rows = s.take(12)                     # 6 full batches per epoch (48 of 50 rows), two epochs
+    assert rows.shape == (12, 8)
+    for epoch in (rows[:6], rows[6:]):
+        assert len(set(epoch.ravel().tolist())) == 48
+    assert not np.array_equal(rows[:6], rows[6:])
+    assert np.array_equal(BatchStream(3, 50, 8).take(12), rows)
+
+
+# --------------------------------------------------------------------------- memory
+
+MEMORY_SCRIPT = """
+    import json, resource, sys
+    import numpy as np, torch
+    from depthplan.config import ConvergeConfig, ModelConfig, ProbeConfig, TrainConfig
+    from depthplan.datasets import Dataset
+    from depthplan.records import CellSpec
+    from depthplan.train import train_cell
+    rng = np.random.default_rng(0)
+    x = rng.standard_normal((2000, 64)).astype(np.float32)
+    y = rng.integers(0, 10, 2000)
+    data = Dataset(x, y, x[:200], y[:200], 10, tuple("abcdefghij"), "noise")
+    spec = CellSpec(depth=8, seeds=tuple(range(256)), learning_rate=0.05)
+    train = TrainConfig(max_updates=20, eval_every=10, converge_when=ConvergeConfig(train_loss_below=1e-12))
+    probe = ProbeConfig(n_points=3, snr_window=16)
+    before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    train_cell(spec, ModelConfig(width=32), train, probe, data)
+    after = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    print(json.dumps({"before_kb": before, "after_kb": after}))
+"""
+
+
+def test_memory_at_256_seeds_depth_8_and_2000_rows_stays_under_1_gb() -> None:
+    # peak resident set of a fresh process (Linux getrusage, kilobytes), torch included, after
+    # one cell with probes and full-set evaluation
+    root = Path(__file__).resolve().parent.parent
+    out = subprocess.run([sys.executable, "-c", textwrap.dedent(MEMORY_SCRIPT)], capture_output=True, text=True,
+                         cwd=root, timeout=300, check=True, env={"PYTHONPATH": str(root), "PATH": ""})
+    peak = json.loads(out.stdout.strip().splitlines()[-1])
+    grown_mb = (peak["after_kb"] - peak["before_kb"]) / 1024
+    assert peak["after_kb"] / 1024 < 1024, f"peak {peak['after_kb'] / 1024:.0f} MB (training added {grown_mb:.0f} MB)"
