@@ -7,6 +7,17 @@ CPU spends most of its time on networks this small. Each seed keeps its own
 initial weights and its own minibatch order, so its trajectory equals what a
 plain per-seed `nn.Sequential` + `torch.optim` loop computes (`train_plain`,
 kept here for the tests and the benchmark). Seeds that finish leave the batch.
+
+What the speed comes from, measured on a 2-core CPU (benchmarks/trainer_speed.py):
+plain SGD folds the gradient product into the update (`W.baddbmm_(h^T, g)`,
+no gradient tensors); the activations' derivatives use autograd's own kernels
+(`tanh_backward` and kin); the output layer is laid out class-major, because
+torch's softmax and reductions along a short last axis are several times
+slower; each evaluation block's minibatches are gathered by one index op; the
+evaluation reuses two activation buffers (fresh multi-MB tensors cost their
+page faults every time); training runs with one intra-op thread. `torch.compile`
+of the step was measured too and left out: its kernels are the same MKL calls,
+and each compiled call's Python wrapper cost more than it saved.
 """
 from __future__ import annotations
 
