@@ -124,11 +124,9 @@ def _cmd_report(args: argparse.Namespace) -> int:
 def _cmd_demo(args: argparse.Namespace) -> int:
     if not DEMO_CONFIG.is_file():
         raise ConfigError(f"the demo sweep {DEMO_CONFIG} is missing; run from a checkout of depthplan")
+    from .reporting import write_report
+
     folder = _train_sweep(DEMO_CONFIG, args)
-    try:
-        from .reporting import write_report
-    except ImportError:  # the report module arrives with the report issue
-        return _cmd_fit(argparse.Namespace(path=str(folder), json=None, save_fraction=0.05, bootstrap=400))
     paths = write_report(folder, None)
     print(f"demo report: {paths['html']}")
     return 0

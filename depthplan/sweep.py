@@ -140,7 +140,8 @@ def write_sidecars(cfg: SweepFile, folder: Path, store: SweepStore, state: dict[
             "seeds_per_depth": {k: len(v) for k, v in state["seeds"].items()},
             "learning_rates": list(cfg.train.learning_rate),
             "tuned_rates": state["tuned"], "rounds": state["rounds"],
-            "early_censor": cfg.sweep.early_censor, "config_file": cfg.source_path}
+            "early_censor": cfg.sweep.early_censor, "config_file": cfg.source_path,
+            "machine": machine_facts()}
     _atomic_write(folder / "sweep.json", json.dumps(info, indent=2) + "\n")
 
 

@@ -36,7 +36,7 @@ def _start(config: Path, out: Path, *extra: str) -> subprocess.Popen:
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=_env())
 
 
-def _wait_for_cells(out: Path, name: str, n: int, timeout_s: float = 120) -> None:
+def _wait_for_cells(out: Path, name: str, n: int, timeout_s: float = 400) -> None:
     deadline = time.time() + timeout_s
     while time.time() < deadline:
         if (out / "store.db").exists():
