@@ -19,6 +19,7 @@ from __future__ import annotations
 import json
 import logging
 import os
+import socket
 import threading
 import warnings
 from dataclasses import dataclass
@@ -184,6 +185,9 @@ class SweepStore:
                 ok = False
             if ok:
                 self.storage.record_heartbeat(t._trial_id)
+                # who holds the cell, for an operator looking at a stuck sweep
+                self.storage.set_trial_system_attr(t._trial_id, "depthplan_worker",
+                                                   f"{socket.gethostname()}:{os.getpid()}")
                 return Claim(t._trial_id, t.number, CellSpec.from_dict(t.user_attrs["cell"]))
         return None
 
@@ -228,6 +232,13 @@ class SweepStore:
             seen.add(cid)
             out.extend(RunResult.from_dict(d) for d in t.user_attrs["runs"])
         return out
+
+    def holders(self) -> dict[str, str]:
+        """Cell id -> "host:pid" of the worker holding it, for every running cell."""
+        from optuna.trial import TrialState
+
+        return {t.user_attrs.get("cell_id"): t.system_attrs.get("depthplan_worker", "")
+                for t in self._trials((TrialState.RUNNING,))}
 
     def completed_cells(self) -> list[tuple[str, int]]:
         """(cell id, trial number) of every COMPLETE trial, duplicates included (for checks)."""

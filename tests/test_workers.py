@@ -28,7 +28,7 @@ name: crash
 data: {source: digits}
 model: {width: 16}
 sweep: {depths: [1, 2, 3], seeds: 4, seeds_per_cell: 2}
-train: {learning_rate: 0.001, max_updates: 1200, eval_every: 50, converge_when: {train_loss_below: 0.01}}
+train: {learning_rate: 0.001, max_updates: 20000, eval_every: 100, converge_when: {train_loss_below: 0.01}}
 probes: {n_points: 4, snr_window: 2}
 """
 
@@ -95,11 +95,13 @@ def _kill_one_worker_mid_cell(url: str, config: Path, out: Path) -> None:
     store = SweepStore(url, "crash")
     assert store.counts()["waiting"] == 6
     workers = [_depthplan("worker", "--storage", url, "--study", "crash") for _ in range(2)]
+    victim = f":{workers[0].pid}"
     deadline = time.time() + 120
-    while store.counts()["running"] < 2 and time.time() < deadline:   # both hold a cell: kill one mid-cell
-        time.sleep(0.1)
-    assert store.counts()["running"] == 2
-    time.sleep(0.5)
+    while not any(h.endswith(victim) for h in store.holders().values()) and time.time() < deadline:
+        time.sleep(0.05)
+    held = [cid for cid, h in store.holders().items() if h.endswith(victim)]
+    assert held, "the first worker never claimed a cell"
+    time.sleep(0.3)                          # mid-cell: a cell trains for a few seconds
     workers[0].send_signal(signal.SIGKILL)
     workers[0].communicate(timeout=30)
     out_text, err = workers[1].communicate(timeout=600)
