@@ -32,6 +32,7 @@ import torch.nn.functional as F
 from .config import ModelConfig, ProbeConfig, TrainConfig
 from .convergence import Criterion, verdict
 from .datasets import Dataset
+from .errors import ConfigError
 from .models import build_mlp, count_params, init_weights
 from .probes import gradient_snr_db, log_spaced_steps
 from .records import CellSpec, RunResult
@@ -341,13 +342,16 @@ def train_cell(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: P
     Returns:
         One `RunResult` per seed, in the order of `spec.seeds`.
     """
+    if eval_rows is None:
+        eval_rows = getattr(train, "eval_rows", None)
+    if eval_rows is not None and (isinstance(eval_rows, bool) or not isinstance(eval_rows, int) or eval_rows < 1):
+        raise ConfigError(f"train.eval_rows: must be a positive integer or unset, got {eval_rows!r}")
     before = torch.get_num_threads()
     if threads is not None:
         torch.set_num_threads(threads)
     try:
         with torch.inference_mode():
-            return _train_cell(spec, model, train, probes, data, progress, dtype,
-                               eval_rows if eval_rows is not None else getattr(train, "eval_rows", None))
+            return _train_cell(spec, model, train, probes, data, progress, dtype, eval_rows)
     finally:
         if threads is not None:
             torch.set_num_threads(before)

@@ -16,6 +16,7 @@ import torch.nn.functional as F
 
 from depthplan.config import ConvergeConfig, DataConfig, ModelConfig, ProbeConfig, TrainConfig
 from depthplan.datasets import load_dataset
+from depthplan.errors import ConfigError
 from depthplan.models import build_mlp
 from depthplan.records import CellSpec
 from depthplan.train import (BatchStream, _draw_gradients, _eval_subset, _Stack, stacked_weights, train_cell,
@@ -179,6 +180,8 @@ def test_evaluation_subset_is_fixed_and_leaves_training_alone(data) -> None:
     assert [r.train_loss for r in every] == [r.train_loss for r in full]
     assert [r.displacement for r in part] == [r.displacement for r in full]   # same training
     assert all(p.train_loss != f.train_loss for p, f in zip(part, full))      # other rows scored
+    with pytest.raises(ConfigError, match=r"train\.eval_rows"):
+        train_cell(spec, model, _train(20), probes, data, eval_rows=0)
 
 
 def test_batch_stream_shuffles_whole_epochs() -> None:
