@@ -94,29 +94,32 @@ def test_snr_draws_match_autograd_gradients_draw_by_draw(data) -> None:
 
 # --------------------------------------------------------------------------- seeds leaving the batch
 
-def test_a_seed_that_converges_leaves_and_the_others_train_as_if_alone(data, monkeypatch) -> None:
-    model, seeds = ModelConfig(width=16), (0, 1, 2)
-    free = _curves(train_cell(CellSpec(2, seeds, 0.05), model, _train(200), NO_PROBES, data, dtype=torch.float64))
+@pytest.mark.parametrize("name", OPTIMIZERS)
+def test_a_seed_that_converges_leaves_and_the_others_train_as_if_alone(data, monkeypatch, name) -> None:
+    model, seeds, lr = ModelConfig(width=16), (0, 1, 2), RATES[name]
+    free = _curves(train_cell(CellSpec(2, seeds, lr), model, _train(200, learning_rate=(lr,), **OPTIMIZERS[name]),
+                              NO_PROBES, data, dtype=torch.float64))
     # a threshold the fastest seed meets by the second evaluation while the others are still above it
     fast = int(np.argmin(free[:, 1]))
-    slowest_others = min(free[s, :2].min() for s in range(3) if s != fast)
-    assert free[fast, 1] < slowest_others
-    train = _train(200, converge_when=ConvergeConfig(train_loss_below=float(free[fast, 1] + slowest_others) / 2))
+    others_best = min(free[s, :2].min() for s in range(3) if s != fast)
+    assert free[fast, 1] < others_best
+    train = _train(200, learning_rate=(lr,), **OPTIMIZERS[name],
+                   converge_when=ConvergeConfig(train_loss_below=float(free[fast, 1] + others_best) / 2))
 
-    widths_seen: list[int] = []
+    seeds_per_step: list[int] = []
     forward = _Stack.forward
-    monkeypatch.setattr(_Stack, "forward", lambda self, x, act: (widths_seen.append(x.shape[0]), forward(self, x, act))[1])
-    together = train_cell(CellSpec(2, seeds, 0.05), model, train, NO_PROBES, data, dtype=torch.float64)
+    monkeypatch.setattr(_Stack, "forward", lambda self, x, act: (seeds_per_step.append(x.shape[0]), forward(self, x, act))[1])
+    together = train_cell(CellSpec(2, seeds, lr), model, train, NO_PROBES, data, dtype=torch.float64)
     assert together[fast].status == "converged" and together[fast].iterations <= 40
-    assert widths_seen[0] == 3 and min(widths_seen) < 3    # the batch shrank once a seed was done
+    assert seeds_per_step[0] == 3 and min(seeds_per_step) < 3    # the batch shrank once a seed was done
 
     for k, seed in enumerate(seeds):
-        alone = train_cell(CellSpec(2, (seed,), 0.05), model, train, NO_PROBES, data, dtype=torch.float64)[0]
+        alone = train_cell(CellSpec(2, (seed,), lr), model, train, NO_PROBES, data, dtype=torch.float64)[0]
         assert (alone.status, alone.iterations, alone.eval_steps) == (together[k].status, together[k].iterations,
                                                                       together[k].eval_steps)
         np.testing.assert_allclose(alone.train_loss, together[k].train_loss, rtol=1e-12)
         # reference: the plain per-seed loop stopping at the same rule
-        plain = train_plain(CellSpec(2, (seed,), 0.05), model, train, data, dtype=torch.float64, until_converged=True)
+        plain = train_plain(CellSpec(2, (seed,), lr), model, train, data, dtype=torch.float64, until_converged=True)
         assert len(plain[0]) * train.eval_every == alone.iterations
 
 
