@@ -104,6 +104,7 @@ class TrainConfig:
     batch_size: int = 32
     max_updates: int = 20000
     eval_every: int = 20
+    eval_rows: int | None = None   # evaluate on this many fixed training rows (None: all of them)
     converge_when: ConvergeConfig = field(default_factory=lambda: ConvergeConfig(train_loss_below=0.1))
 
 
@@ -414,6 +415,7 @@ def _train(c: _Checker, raw: Any) -> TrainConfig:
         batch_size=c.take(d, "train", "batch_size", _int(), dflt.batch_size),
         max_updates=c.take(d, "train", "max_updates", _int(), dflt.max_updates),
         eval_every=c.take(d, "train", "eval_every", _int(), dflt.eval_every),
+        eval_rows=c.take(d, "train", "eval_rows", _int(), None),
         converge_when=conv,
     )
     if t.eval_every > t.max_updates:

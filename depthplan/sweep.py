@@ -323,7 +323,7 @@ def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int = 1
         if workers == 1:
             import torch
 
-            torch.set_num_threads(max(1, min(2, os.cpu_count() or 1)))
+            torch.set_num_threads(1)   # a second thread never helped these small products, and hurts under load
         try:
             while True:
                 if cfg.train.tune is not None:

@@ -67,6 +67,7 @@ def test_defaults_round_trip_through_the_resolved_config(tiny_config: Path) -> N
     ("train: {batch_size: 1.5}", r"train\.batch_size: must be a positive integer, got 1\.5"),
     ("train: {optimizer: lbfgs}", r"train\.optimizer: must be one of sgd, adam"),
     ("train: {momentum: 1.0}", r"train\.momentum: must be a number >= 0 and < 1"),
+    ("train: {eval_rows: 0}", r"train\.eval_rows: must be a positive integer, got 0"),
     ("train: {max_updates: 10, eval_every: 20}", r"train\.eval_every: must not exceed"),
     ("train: {converge_when: {}}", r"train\.converge_when: must set at least one"),
     ("train: {converge_when: {train_acuracy_at_least: 0.9}}", r"did you mean 'train_accuracy_at_least'"),
