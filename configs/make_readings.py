@@ -8,7 +8,6 @@ from __future__ import annotations
 import csv
 from pathlib import Path
 
-import numpy as np
 
 from depthplan.datasets import synthetic_scenario
 
