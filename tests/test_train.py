@@ -18,7 +18,8 @@ from depthplan.datasets import load_dataset
 from depthplan.errors import ConfigError
 from depthplan.models import build_mlp
 from depthplan.records import CellSpec
-from depthplan.train import (BatchStream, _draw_gradients, _eval_subset, _Stack, stacked_weights, train_cell,
+from depthplan.stacked import _draw_gradients, _Stack
+from depthplan.train import (BatchStream, _eval_subset, stacked_weights, train_cell,
                              train_plain)
 
 NO_PROBES = ProbeConfig(displacement=False, snr=False)
