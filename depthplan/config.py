@@ -6,16 +6,15 @@ path (`sweep.depths[2]: must be a positive integer, got 0`) and raised once as a
 """
 from __future__ import annotations
 
-import difflib
 import hashlib
 import json
-import math
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 import yaml
 
+from .checks import Checker, as_choice, as_flag, as_float, as_int, as_text, int_list, show
 from .errors import ConfigError
 
 SOURCES = ("synthetic", "digits", "iris", "wine", "breast_cancer", "csv", "npz", "npy")
@@ -153,127 +152,26 @@ class SweepFile:
         return hashlib.sha256(json.dumps(d, sort_keys=True).encode()).hexdigest()[:16]
 
 
-# --------------------------------------------------------------------------- checking
-
-class _Checker:
-    """Collects problems with their key paths."""
-
-    def __init__(self) -> None:
-        self.problems: list[str] = []
-
-    def add(self, path: str, msg: str) -> None:
-        self.problems.append(f"{path}: {msg}")
-
-    def keys(self, path: str, got: Any, allowed: tuple[str, ...]) -> dict[str, Any]:
-        if got is None:
-            return {}
-        if not isinstance(got, dict):
-            self.add(path or "top level", f"must be a mapping of keys, got {_show(got)}")
-            return {}
-        for key in got:
-            if key not in allowed:
-                near = difflib.get_close_matches(str(key), allowed, n=1)
-                hint = f" (did you mean '{near[0]}'?)" if near else f"; allowed: {', '.join(allowed)}"
-                where = f" in {path}" if path else ""
-                self.problems.append(f"unknown key '{key}'{where}{hint}")
-        return got
-
-    def take(self, d: dict[str, Any], path: str, key: str, check: Callable[[Any], Any], default: Any) -> Any:
-        if key not in d or d[key] is None and default is None:
-            return default
-        try:
-            return check(d[key])
-        except ValueError as exc:
-            self.add(f"{path}.{key}" if path else key, str(exc))
-            return default
-
-
-def _show(v: Any) -> str:
-    return repr(v) if isinstance(v, str) else json.dumps(v, default=str)
-
-
-def _int(lo: int = 1) -> Callable[[Any], int]:
-    def check(v: Any) -> int:
-        if isinstance(v, bool) or not isinstance(v, int) or v < lo:
-            what = "a positive integer" if lo == 1 else f"an integer >= {lo}"
-            raise ValueError(f"must be {what}, got {_show(v)}")
-        return v
-    return check
-
-
-def _float(lo: float = 0.0, hi: float = math.inf, lo_open: bool = True, hi_open: bool = False) -> Callable[[Any], float]:
-    def check(v: Any) -> float:
-        ok = isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
-        if ok:
-            ok = (v > lo if lo_open else v >= lo) and (v < hi if hi_open else v <= hi)
-        if not ok:
-            lo_s = f"> {lo:g}" if lo_open else f">= {lo:g}"
-            hi_s = "" if math.isinf(hi) else (f" and < {hi:g}" if hi_open else f" and <= {hi:g}")
-            raise ValueError(f"must be a number {lo_s}{hi_s}, got {_show(v)}")
-        return float(v)
-    return check
-
-
-def _choice(options: tuple[str, ...]) -> Callable[[Any], str]:
-    def check(v: Any) -> str:
-        if not isinstance(v, str) or v.lower() not in options:
-            near = difflib.get_close_matches(str(v).lower(), options, n=1)
-            hint = f" (did you mean '{near[0]}'?)" if near else ""
-            raise ValueError(f"must be one of {', '.join(options)}, got {_show(v)}{hint}")
-        return v.lower()
-    return check
-
-
-def _text(v: Any) -> str:
-    if not isinstance(v, str) or not v.strip():
-        raise ValueError(f"must be a non-empty string, got {_show(v)}")
-    return v
-
-
-def _flag(v: Any) -> bool:
-    if not isinstance(v, bool):
-        raise ValueError(f"must be true or false, got {_show(v)}")
-    return v
-
-
-def _int_list(c: _Checker, path: str, v: Any, *, unique: bool = True, lo: int = 1) -> tuple[int, ...] | None:
-    if not isinstance(v, list) or not v:
-        what = "positive integers" if lo == 1 else f"integers >= {lo}"
-        c.add(path, f"must be a non-empty list of {what}, got {_show(v)}")
-        return None
-    out, ok = [], True
-    for i, x in enumerate(v):
-        try:
-            out.append(_int(lo)(x))
-        except ValueError as exc:
-            c.add(f"{path}[{i}]", str(exc))
-            ok = False
-    if ok and unique and len(set(out)) != len(out):
-        c.add(path, f"must not repeat a value, got {_show(v)}")
-        ok = False
-    return tuple(out) if ok else None
-
-
 # --------------------------------------------------------------------------- sections
 
-def _data(c: _Checker, raw: Any, base: Path) -> DataConfig:
+def _data(c: Checker, raw: Any, base: Path) -> DataConfig:
     d = c.keys("data", raw, tuple(DataConfig.__dataclass_fields__))
     dflt = DataConfig()
-    source = c.take(d, "data", "source", _choice(SOURCES), dflt.source)
+    source = c.take(d, "data", "source", as_choice(SOURCES), dflt.source)
     kw: dict[str, Any] = {"source": source}
     for key in ("path", "label", "label_path", "features"):
-        kw[key] = c.take(d, "data", key, _text, getattr(dflt, key))
+        kw[key] = c.take(d, "data", key, as_text, getattr(dflt, key))
     for key in ("path", "label_path"):
         if kw[key] is not None:
             p = Path(kw[key]).expanduser()
             kw[key] = str(p if p.is_absolute() else (base / p).resolve())
-    kw["validation_fraction"] = c.take(d, "data", "validation_fraction", _float(0.0, 0.9, lo_open=False), dflt.validation_fraction)
-    kw["split_seed"] = c.take(d, "data", "split_seed", _int(0), dflt.split_seed)
+    kw["validation_fraction"] = c.take(d, "data", "validation_fraction", as_float(0.0, 0.9, lo_open=False), dflt.validation_fraction)
+    kw["split_seed"] = c.take(d, "data", "split_seed", as_int(0), dflt.split_seed)
     for key in ("n_samples", "n_features", "n_latent"):
-        kw[key] = c.take(d, "data", key, _int(), getattr(dflt, key))
-    kw["n_classes"] = c.take(d, "data", "n_classes", _int(2), dflt.n_classes)
-    kw["noise"] = c.take(d, "data", "noise", _float(0.0, lo_open=False), dflt.noise)
-    kw["scenario_seed"] = c.take(d, "data", "scenario_seed", _int(0), dflt.scenario_seed)
+        kw[key] = c.take(d, "data", key, as_int(), getattr(dflt, key))
+    kw["n_classes"] = c.take(d, "data", "n_classes", as_int(2), dflt.n_classes)
+    kw["noise"] = c.take(d, "data", "noise", as_float(0.0, lo_open=False), dflt.noise)
+    kw["scenario_seed"] = c.take(d, "data", "scenario_seed", as_int(0), dflt.scenario_seed)
     if source in ("csv", "npz", "npy") and kw["path"] is None:
         c.add("data.path", f"is required when data.source is {source}")
     if source == "csv" and kw["label"] is None:
@@ -288,20 +186,20 @@ def _data(c: _Checker, raw: Any, base: Path) -> DataConfig:
     return DataConfig(**kw)
 
 
-def _model(c: _Checker, raw: Any) -> ModelConfig:
+def _model(c: Checker, raw: Any) -> ModelConfig:
     d = c.keys("model", raw, tuple(ModelConfig.__dataclass_fields__))
     dflt = ModelConfig()
     width: Any = dflt.width
     if "width" in d:
         if isinstance(d["width"], list):
-            width = _int_list(c, "model.width", d["width"], unique=False) or dflt.width
+            width = int_list(c, "model.width", d["width"], unique=False) or dflt.width
         else:
-            width = c.take(d, "model", "width", _int(), dflt.width)
+            width = c.take(d, "model", "width", as_int(), dflt.width)
     return ModelConfig(
         width=width,
-        activation=c.take(d, "model", "activation", _choice(ACTIVATIONS), dflt.activation),
-        init=c.take(d, "model", "init", _choice(INITS), dflt.init),
-        init_gain=c.take(d, "model", "init_gain", _float(), None),
+        activation=c.take(d, "model", "activation", as_choice(ACTIVATIONS), dflt.activation),
+        init=c.take(d, "model", "init", as_choice(INITS), dflt.init),
+        init_gain=c.take(d, "model", "init_gain", as_float(), None),
     )
 
 
@@ -311,23 +209,23 @@ def geometric_depths(low: int, high: int, n: int = 5) -> tuple[int, ...]:
     return tuple(sorted({max(low, min(high, round(v))) for v in raw}))
 
 
-def _adaptive(c: _Checker, raw: dict) -> AdaptiveConfig:
+def _adaptive(c: Checker, raw: dict) -> AdaptiveConfig:
     d = c.keys("sweep.depths", raw, tuple(AdaptiveConfig.__dataclass_fields__))
     dflt = AdaptiveConfig()
     a = AdaptiveConfig(
-        low=c.take(d, "sweep.depths", "low", _int(), dflt.low),
-        high=c.take(d, "sweep.depths", "high", _int(), dflt.high),
-        target_width=c.take(d, "sweep.depths", "target_width", _float(), dflt.target_width),
-        max_rounds=c.take(d, "sweep.depths", "max_rounds", _int(), dflt.max_rounds),
-        cpu_budget_s=c.take(d, "sweep.depths", "cpu_budget_s", _float(), None),
-        extra_seeds=c.take(d, "sweep.depths", "extra_seeds", _int(0), dflt.extra_seeds),
+        low=c.take(d, "sweep.depths", "low", as_int(), dflt.low),
+        high=c.take(d, "sweep.depths", "high", as_int(), dflt.high),
+        target_width=c.take(d, "sweep.depths", "target_width", as_float(), dflt.target_width),
+        max_rounds=c.take(d, "sweep.depths", "max_rounds", as_int(), dflt.max_rounds),
+        cpu_budget_s=c.take(d, "sweep.depths", "cpu_budget_s", as_float(), None),
+        extra_seeds=c.take(d, "sweep.depths", "extra_seeds", as_int(0), dflt.extra_seeds),
     )
     if a.high < a.low + 3:
         c.add("sweep.depths.high", f"must be at least low + 3 ({a.low + 3}) for an adaptive sweep, got {a.high}")
     return a
 
 
-def _sweep(c: _Checker, raw: Any) -> SweepConfig:
+def _sweep(c: Checker, raw: Any) -> SweepConfig:
     d = c.keys("sweep", raw, tuple(f for f in SweepConfig.__dataclass_fields__ if f != "adaptive"))
     dflt = SweepConfig()
     adaptive = None
@@ -335,46 +233,46 @@ def _sweep(c: _Checker, raw: Any) -> SweepConfig:
         adaptive = _adaptive(c, d["depths"])
         depths = geometric_depths(adaptive.low, max(adaptive.low + 3, adaptive.high // 2))
     else:
-        depths = _int_list(c, "sweep.depths", d["depths"]) if "depths" in d else dflt.depths
+        depths = int_list(c, "sweep.depths", d["depths"]) if "depths" in d else dflt.depths
     seeds: Any = dflt.seeds
     if "seeds" in d:
         s = d["seeds"]
         if isinstance(s, list):
-            seeds = _int_list(c, "sweep.seeds", s, lo=0) or dflt.seeds
+            seeds = int_list(c, "sweep.seeds", s, lo=0) or dflt.seeds
         else:
-            n = c.take(d, "sweep", "seeds", _int(), None)
+            n = c.take(d, "sweep", "seeds", as_int(), None)
             seeds = tuple(range(n)) if n else dflt.seeds
-    per_cell = c.take(d, "sweep", "seeds_per_cell", _int(), None)
-    early = c.take(d, "sweep", "early_censor", _float(1.0, lo_open=True), None)
+    per_cell = c.take(d, "sweep", "seeds_per_cell", as_int(), None)
+    early = c.take(d, "sweep", "early_censor", as_float(1.0, lo_open=True), None)
     return SweepConfig(depths=tuple(sorted(depths or dflt.depths)), seeds=seeds, seeds_per_cell=per_cell,
                        adaptive=adaptive, early_censor=early)
 
 
-def _tune(c: _Checker, raw: dict) -> tuple[TuneConfig, tuple[float, ...]]:
+def _tune(c: Checker, raw: dict) -> tuple[TuneConfig, tuple[float, ...]]:
     path = "train.learning_rate"
     d = c.keys(path, raw, (*TuneConfig.__dataclass_fields__, "also_fixed"))
     dflt = TuneConfig()
     t = TuneConfig(
-        low=c.take(d, path, "low", _float(), dflt.low),
-        high=c.take(d, path, "high", _float(), dflt.high),
-        trials=c.take(d, path, "trials", _int(2), dflt.trials),
-        seeds=c.take(d, path, "seeds", _int(), dflt.seeds),
-        penalty=c.take(d, path, "penalty", _float(1.0, lo_open=False), dflt.penalty),
+        low=c.take(d, path, "low", as_float(), dflt.low),
+        high=c.take(d, path, "high", as_float(), dflt.high),
+        trials=c.take(d, path, "trials", as_int(2), dflt.trials),
+        seeds=c.take(d, path, "seeds", as_int(), dflt.seeds),
+        penalty=c.take(d, path, "penalty", as_float(1.0, lo_open=False), dflt.penalty),
     )
     if t.high <= t.low:
         c.add(f"{path}.high", f"must be above low ({t.low:g}), got {t.high:g}")
     fixed: list[float] = []
     for i, x in enumerate(d.get("also_fixed") or []):
         try:
-            fixed.append(_float()(x))
+            fixed.append(as_float()(x))
         except ValueError as exc:
             c.add(f"{path}.also_fixed[{i}]", str(exc))
     if "also_fixed" in d and not isinstance(d["also_fixed"], list):
-        c.add(f"{path}.also_fixed", f"must be a list of rates, got {_show(d['also_fixed'])}")
+        c.add(f"{path}.also_fixed", f"must be a list of rates, got {show(d['also_fixed'])}")
     return t, tuple(fixed)
 
 
-def _train(c: _Checker, raw: Any) -> TrainConfig:
+def _train(c: Checker, raw: Any) -> TrainConfig:
     d = c.keys("train", raw, tuple(f for f in TrainConfig.__dataclass_fields__ if f != "tune"))
     dflt = TrainConfig()
     lr: Any = dflt.learning_rate
@@ -387,35 +285,35 @@ def _train(c: _Checker, raw: Any) -> TrainConfig:
             vals = []
             for i, x in enumerate(v):
                 try:
-                    vals.append(_float()(x))
+                    vals.append(as_float()(x))
                 except ValueError as exc:
                     c.add(f"train.learning_rate[{i}]", str(exc))
             if len(set(vals)) != len(vals):
-                c.add("train.learning_rate", f"must not repeat a value, got {_show(v)}")
+                c.add("train.learning_rate", f"must not repeat a value, got {show(v)}")
             lr = tuple(vals) if vals else lr
         else:
-            one = c.take(d, "train", "learning_rate", _float(), None)
+            one = c.take(d, "train", "learning_rate", as_float(), None)
             lr = (one,) if one is not None else lr
     cw_raw = d.get("converge_when", None)
     cw = c.keys("train.converge_when", cw_raw, tuple(ConvergeConfig.__dataclass_fields__))
     conv = dflt.converge_when
     if "converge_when" in d:
         conv = ConvergeConfig(
-            train_loss_below=c.take(cw, "train.converge_when", "train_loss_below", _float(), None),
-            train_accuracy_at_least=c.take(cw, "train.converge_when", "train_accuracy_at_least", _float(0.0, 1.0), None),
-            validation_accuracy_at_least=c.take(cw, "train.converge_when", "validation_accuracy_at_least", _float(0.0, 1.0), None),
+            train_loss_below=c.take(cw, "train.converge_when", "train_loss_below", as_float(), None),
+            train_accuracy_at_least=c.take(cw, "train.converge_when", "train_accuracy_at_least", as_float(0.0, 1.0), None),
+            validation_accuracy_at_least=c.take(cw, "train.converge_when", "validation_accuracy_at_least", as_float(0.0, 1.0), None),
         )
         if isinstance(cw_raw, dict) and all(v is None for v in asdict(conv).values()):
             c.add("train.converge_when", "must set at least one of train_loss_below, train_accuracy_at_least, validation_accuracy_at_least")
     t = TrainConfig(
-        optimizer=c.take(d, "train", "optimizer", _choice(OPTIMIZERS), dflt.optimizer),
+        optimizer=c.take(d, "train", "optimizer", as_choice(OPTIMIZERS), dflt.optimizer),
         learning_rate=lr,
         tune=tune,
-        momentum=c.take(d, "train", "momentum", _float(0.0, 1.0, lo_open=False, hi_open=True), dflt.momentum),
-        batch_size=c.take(d, "train", "batch_size", _int(), dflt.batch_size),
-        max_updates=c.take(d, "train", "max_updates", _int(), dflt.max_updates),
-        eval_every=c.take(d, "train", "eval_every", _int(), dflt.eval_every),
-        eval_rows=c.take(d, "train", "eval_rows", _int(), None),
+        momentum=c.take(d, "train", "momentum", as_float(0.0, 1.0, lo_open=False, hi_open=True), dflt.momentum),
+        batch_size=c.take(d, "train", "batch_size", as_int(), dflt.batch_size),
+        max_updates=c.take(d, "train", "max_updates", as_int(), dflt.max_updates),
+        eval_every=c.take(d, "train", "eval_every", as_int(), dflt.eval_every),
+        eval_rows=c.take(d, "train", "eval_rows", as_int(), None),
         converge_when=conv,
     )
     if t.eval_every > t.max_updates:
@@ -423,23 +321,23 @@ def _train(c: _Checker, raw: Any) -> TrainConfig:
     return t
 
 
-def _probes(c: _Checker, raw: Any) -> ProbeConfig:
+def _probes(c: Checker, raw: Any) -> ProbeConfig:
     d = c.keys("probes", raw, tuple(ProbeConfig.__dataclass_fields__))
     dflt = ProbeConfig()
     return ProbeConfig(
-        displacement=c.take(d, "probes", "displacement", _flag, dflt.displacement),
-        snr=c.take(d, "probes", "snr", _flag, dflt.snr),
-        n_points=c.take(d, "probes", "n_points", _int(2), dflt.n_points),
-        snr_window=c.take(d, "probes", "snr_window", _int(2), dflt.snr_window),
+        displacement=c.take(d, "probes", "displacement", as_flag, dflt.displacement),
+        snr=c.take(d, "probes", "snr", as_flag, dflt.snr),
+        n_points=c.take(d, "probes", "n_points", as_int(2), dflt.n_points),
+        snr_window=c.take(d, "probes", "snr_window", as_int(2), dflt.snr_window),
     )
 
 
-def _output(c: _Checker, raw: Any, base: Path) -> OutputConfig:
+def _output(c: Checker, raw: Any, base: Path) -> OutputConfig:
     d = c.keys("output", raw, tuple(OutputConfig.__dataclass_fields__))
-    out = c.take(d, "output", "dir", _text, None)
+    out = c.take(d, "output", "dir", as_text, None)
     if out is not None and not Path(out).expanduser().is_absolute():
         out = str((base / out).resolve())
-    storage = c.take(d, "output", "storage", _text, None)
+    storage = c.take(d, "output", "storage", as_text, None)
     if storage is not None and "://" in storage and "@" in storage.split("://", 1)[1].split("/", 1)[0]:
         c.add("output.storage", "must not hold credentials; set DEPTHPLAN_STORAGE in the environment or pass --storage")
     return OutputConfig(dir=out, storage=storage)
@@ -459,15 +357,15 @@ def parse_config(raw: Any, *, base_dir: Path, where: str = "sweep file") -> Swee
     Raises:
         ConfigError: listing every problem, one per line, each with its key path.
     """
-    c = _Checker()
+    c = Checker()
     top = c.keys("", raw, TOP_KEYS)
     if not isinstance(raw, dict):
         raise ConfigError(f"{where}: must be a YAML mapping with keys {', '.join(TOP_KEYS)}")
-    name = c.take(top, "", "name", _text, None)
+    name = c.take(top, "", "name", as_text, None)
     if name is None and "name" not in top:
         c.add("name", "is required (it names the results folder)")
     elif name is not None and any(ch in name for ch in "/\\") or name in (".", ".."):
-        c.add("name", f"must be usable as a folder name, got {_show(name)}")
+        c.add("name", f"must be usable as a folder name, got {show(name)}")
     cfg = SweepFile(
         name=name or "",
         data=_data(c, top.get("data"), base_dir),
