@@ -45,22 +45,21 @@ def _cmd_check(args: argparse.Namespace) -> int:
 
 
 def _print_depth_table(results: list) -> None:
+    """Runs per depth and their median T, one block per learning-rate curve (the rules of fit.json)."""
     import statistics
-    from statistics import median
 
-    by: dict[tuple[str, float, int], list] = {}
+    from .fitting import summarize_depths
+
+    curves: dict[tuple[str, float], list] = {}
     for r in results:
-        by.setdefault((r.lr_mode, r.learning_rate if r.lr_mode == "fixed" else 0.0, r.depth), []).append(r)
+        curves.setdefault((r.lr_mode, r.learning_rate if r.lr_mode == "fixed" else 0.0), []).append(r)
     print(f"{'lr':>8} {'mode':>6} {'depth':>5} {'runs':>4} {'conv':>4} {'cens':>4} {'div':>4} {'median T':>10}")
-    for (mode, _, depth), rs in sorted(by.items()):
-        lr = statistics.median(r.learning_rate for r in rs)
-        conv = [r.iterations for r in rs if r.status == "converged"]
-        cens = sum(r.status == "censored" for r in rs)
-        div = sum(r.status == "diverged" for r in rs)
-        # a median is a value only when fewer than half the runs are censored or diverged
-        med = f"{median(r.iterations if r.status == 'converged' else float('inf') for r in rs):>10.0f}" \
-            if len(conv) > len(rs) / 2 else f"{'> budget':>10}"
-        print(f"{lr:>8.3g} {mode:>6} {depth:>5} {len(rs):>4} {len(conv):>4} {cens:>4} {div:>4} {med}")
+    for (mode, _), runs in sorted(curves.items()):
+        for row in summarize_depths(runs):
+            lr = statistics.median(r.learning_rate for r in runs if r.depth == row["depth"])
+            med = f"{row['median']:>10.0f}" if row["median"] is not None else f"{'> budget':>10}"
+            print(f"{lr:>8.3g} {mode:>6} {row['depth']:>5} {row['runs']:>4} {row['converged']:>4} "
+                  f"{row['censored']:>4} {row['diverged']:>4} {med}")
 
 
 def _train_sweep(config: Path, args: argparse.Namespace) -> Path:

@@ -149,7 +149,15 @@ class SweepFile:
         d = self.to_dict()
         d.pop("output")
         d.pop("name")
-        return hashlib.sha256(json.dumps(d, sort_keys=True).encode()).hexdigest()[:16]
+        # unset (None) settings are left out, so a setting added later with a None default
+        # leaves the fingerprints of sweeps stored before it unchanged
+        return hashlib.sha256(json.dumps(_without_none(d), sort_keys=True).encode()).hexdigest()[:16]
+
+
+def _without_none(v: Any) -> Any:
+    if isinstance(v, dict):
+        return {k: _without_none(x) for k, x in v.items() if x is not None}
+    return v
 
 
 # --------------------------------------------------------------------------- sections

@@ -118,3 +118,19 @@ def test_fingerprint_follows_what_changes_a_measurement(write_yaml) -> None:
     c = load_config(write_yaml("name: a\ntrain: {learning_rate: 0.2}\n", "c.yaml"))
     assert a.fingerprint() == b.fingerprint()      # name and output folder change no number
     assert a.fingerprint() != c.fingerprint()
+
+
+def test_an_unset_setting_does_not_change_the_fingerprint(write_yaml, monkeypatch: pytest.MonkeyPatch) -> None:
+    import dataclasses
+
+    from depthplan.config import SweepFile
+
+    cfg = load_config(write_yaml("name: a\ntrain: {learning_rate: 0.1}\n"))
+    before = cfg.fingerprint()
+    with_rows = dataclasses.replace(cfg, train=dataclasses.replace(cfg.train, eval_rows=500))
+    assert with_rows.fingerprint() != before                 # a set value counts
+    # a setting added in a later version, unset: sweeps stored before it keep their fingerprint
+    plain = SweepFile.to_dict
+    monkeypatch.setattr(SweepFile, "to_dict",
+                        lambda self: {**plain(self), "train": {**plain(self)["train"], "later_setting": None}})
+    assert cfg.fingerprint() == before
