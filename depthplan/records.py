@@ -6,6 +6,8 @@ the fitting code and the report can all read them without importing torch.
 from __future__ import annotations
 
 import csv
+import io
+import json
 import math
 from dataclasses import asdict, dataclass, field, fields
 from pathlib import Path
@@ -91,19 +93,35 @@ def _jsonable(v: Any) -> Any:
     return v
 
 
-def write_runs_csv(results: list[RunResult], path: Path) -> Path:
-    """Write one row per seed run to `path` atomically and return it."""
+def write_text_atomic(path: Path, text: str) -> Path:
+    """Write `text` to `path` through a temporary file, so a reader never sees half a file."""
     path = Path(path)
     tmp = path.with_suffix(path.suffix + ".tmp")
-    ordered = sorted(results, key=lambda r: (r.lr_mode, r.learning_rate, r.depth, r.seed))
-    with tmp.open("w", newline="") as fh:
-        writer = csv.DictWriter(fh, fieldnames=RUN_COLUMNS)
-        writer.writeheader()
-        for r in ordered:
-            row = r.row()
-            writer.writerow({k: ("" if v is None else v) for k, v in row.items()})
+    tmp.write_text(text, encoding="utf-8")
     tmp.replace(path)
     return path
+
+
+def write_csv(path: Path, rows: list[dict[str, Any]], columns: tuple[str, ...]) -> Path:
+    """Write rows (None as an empty cell) under a header of `columns`, atomically."""
+    buf = io.StringIO(newline="")
+    writer = csv.DictWriter(buf, fieldnames=columns)
+    writer.writeheader()
+    for row in rows:
+        writer.writerow({k: ("" if v is None else v) for k, v in row.items()})
+    return write_text_atomic(path, buf.getvalue())
+
+
+def write_runs_csv(results: list[RunResult], path: Path) -> Path:
+    """Write one row per seed run to `path` atomically and return it."""
+    ordered = sorted(results, key=lambda r: (r.lr_mode, r.learning_rate, r.depth, r.seed))
+    return write_csv(path, [r.row() for r in ordered], RUN_COLUMNS)
+
+
+def write_runs_jsonl(results: list[RunResult], path: Path) -> Path:
+    """Write one JSON object per seed run, curves and probes included, atomically."""
+    lines = (json.dumps(r.to_dict(), allow_nan=False) + "\n" for r in results)
+    return write_text_atomic(path, "".join(lines))
 
 
 @dataclass(frozen=True)

@@ -30,7 +30,7 @@ from . import figures as F
 from . import training_figures as TF
 from .errors import DataError, DepthplanError
 from .fitting import SCHEMA, fit_path
-from .records import RunResult
+from .records import RunResult, write_text_atomic
 from .report_markup import Block, FigureFile, Words, to_html, to_markdown
 from .report_answer import answer_blocks, dynamics_words
 from .report_tables import (depth_table_blocks, fit_table_blocks, provenance_blocks, rate_blocks,
@@ -371,14 +371,7 @@ def write_report(path: Path, out: Path | None = None, *, n_boot: int = 400) -> d
     blocks = build_blocks(inp, figs)
     title = _title(inp)
     md, html_path = out / "report.md", out / "report.html"
-    _atomic_write(md, to_markdown(blocks, inp.fit, title, fig_dir.name))
-    _atomic_write(html_path, to_html(blocks, inp.fit, title))
+    write_text_atomic(md, to_markdown(blocks, inp.fit, title, fig_dir.name))
+    write_text_atomic(html_path, to_html(blocks, inp.fit, title))
     return {"md": md, "html": html_path, "fit": report_fit,
             "figures": [p for f in figs for p in (f.png, f.svg)]}
-
-
-def _atomic_write(path: Path, text: str) -> None:
-    tmp = path.with_name(path.name + ".tmp")
-    tmp.write_text(text, encoding="utf-8")
-    tmp.replace(path)
-

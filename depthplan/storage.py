@@ -16,7 +16,6 @@ Never imports torch.
 """
 from __future__ import annotations
 
-import json
 import logging
 import os
 import socket
@@ -24,7 +23,7 @@ import threading
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Iterator
+from typing import Any
 
 from .errors import StoreError
 from .records import CellSpec, RunResult
@@ -274,8 +273,3 @@ class Heartbeat:
 def resolve_url(option: str | None, config_value: str | None, folder: Path) -> str:
     """Storage URL: --storage, then $DEPTHPLAN_STORAGE, then the config, then the local SQLite file."""
     return option or os.environ.get(STORAGE_ENV) or config_value or local_url(folder)
-
-
-def iter_json_lines(results: list[RunResult]) -> Iterator[str]:
-    for r in results:
-        yield json.dumps(r.to_dict(), allow_nan=False)

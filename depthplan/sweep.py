@@ -22,8 +22,8 @@ from typing import Any, Callable
 
 from .config import SweepFile, config_from_dict, dump_config
 from .errors import ConfigError, DepthplanError, RunFailed, StoreError
-from .records import CellSpec, RunResult, write_runs_csv
-from .storage import Heartbeat, SweepStore, iter_json_lines, redact, resolve_url, tuning_storage
+from .records import CellSpec, RunResult, write_csv, write_runs_csv, write_runs_jsonl, write_text_atomic
+from .storage import Heartbeat, SweepStore, redact, resolve_url, tuning_storage
 
 log = logging.getLogger(__name__)
 
@@ -142,20 +142,14 @@ def write_sidecars(cfg: SweepFile, folder: Path, store: SweepStore, state: dict[
             "tuned_rates": state["tuned"], "rounds": state["rounds"],
             "early_censor": cfg.sweep.early_censor, "config_file": cfg.source_path,
             "machine": machine_facts()}
-    _atomic_write(folder / "sweep.json", json.dumps(info, indent=2) + "\n")
-
-
-def _atomic_write(path: Path, text: str) -> None:
-    tmp = path.with_suffix(path.suffix + ".tmp")
-    tmp.write_text(text)
-    tmp.replace(path)
+    write_text_atomic(folder / "sweep.json", json.dumps(info, indent=2) + "\n")
 
 
 def export_runs(store: SweepStore, folder: Path) -> list[RunResult]:
     """Write `runs.csv` (one row per seed run) and `runs.jsonl` (rows with curves and probes)."""
     results = store.results()
     write_runs_csv(results, folder / "runs.csv")
-    _atomic_write(folder / "runs.jsonl", "".join(line + "\n" for line in iter_json_lines(results)))
+    write_runs_jsonl(results, folder / "runs.jsonl")
     return results
 
 
@@ -360,7 +354,7 @@ def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int = 1
         write_sidecars(cfg, folder, store, state)
         if cfg.train.tune is not None:
             rows = tuning_trials(tuning_storage(store.url), cfg.name, sorted(int(k) for k in state["seeds"]))
-            _write_table(folder / "tuning.csv", rows, ("depth", "trial", "learning_rate", "objective", "statuses"))
+            write_csv(folder / "tuning.csv", rows, ("depth", "trial", "learning_rate", "objective", "statuses"))
     cells = plan_cells(cfg, state)
     missing = len(cells) - len({r.cell_id for r in results} & {c.cell_id for c in cells})
     if missing and not plan_only:
@@ -383,17 +377,6 @@ def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int = 1
                          f"{cfg.train.tune.high:g}] at depths {edge}: widen the range and rerun in a new folder")
     return SweepSummary(folder, len(cells), n_trained, len(results), time.perf_counter() - t0, by_status,
                         state["rounds"], tuned, notes)
-
-
-def _write_table(path: Path, rows: list[dict], columns: tuple[str, ...]) -> None:
-    import csv
-
-    tmp = path.with_suffix(".tmp")
-    with tmp.open("w", newline="") as fh:
-        w = csv.DictWriter(fh, fieldnames=columns)
-        w.writeheader()
-        w.writerows(rows)
-    tmp.replace(path)
 
 
 def _run_processes(cfg: SweepFile, store: SweepStore, workers: int, bar: Any) -> int:
