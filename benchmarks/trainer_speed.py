@@ -48,11 +48,11 @@ import torch  # noqa: E402
 
 from depthplan.config import (ConvergeConfig, DataConfig, ModelConfig, ProbeConfig,  # noqa: E402
                               TrainConfig, config_from_dict, load_config)
-from depthplan.datasets import Dataset, load_dataset  # noqa: E402
-from depthplan.models import layer_sizes  # noqa: E402
+from depthplan.train.datasets import Dataset, load_dataset  # noqa: E402
+from depthplan.train.models import layer_sizes  # noqa: E402
 from depthplan.records import CellSpec  # noqa: E402
-from depthplan.tables import load_runs  # noqa: E402
-from depthplan.train import train_cell, train_plain  # noqa: E402
+from depthplan.fitting.inputs import load_runs  # noqa: E402
+from depthplan.train.loop import train_cell, train_plain  # noqa: E402
 
 DEPTHS = (1, 4, 8)
 
@@ -199,7 +199,7 @@ def sensitivity(cfg, data: Dataset, depth: int, n_updates: int) -> str:
 
 
 def end_to_end(quick: bool) -> None:
-    from depthplan.sweep import run_sweep
+    from depthplan.sweep.run import run_sweep
 
     cfg = demo_config(quick)
     with tempfile.TemporaryDirectory() as folder:

@@ -9,7 +9,7 @@ import csv
 from pathlib import Path
 
 
-from depthplan.datasets import synthetic_scenario
+from depthplan.train.datasets import synthetic_scenario
 
 COLUMNS = [f"sensor_{i:02d}" for i in range(12)]
 OUTCOMES = ["sound", "crazed", "warped"]

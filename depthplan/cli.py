@@ -28,8 +28,8 @@ class _Parser(argparse.ArgumentParser):
 
 def _cmd_check(args: argparse.Namespace) -> int:
     from .config import load_config
-    from .datasets import load_dataset
-    from .sweep import output_folder, plan_cells
+    from .sweep.run import output_folder, plan_cells
+    from .train.datasets import load_dataset
 
     cfg = load_config(args.config)
     data = load_dataset(cfg.data)
@@ -48,7 +48,7 @@ def _print_depth_table(results: list) -> None:
     """Runs per depth and their median T, one block per learning-rate curve (the rules of fit.json)."""
     import statistics
 
-    from .fitting import summarize_depths
+    from .fitting.assemble import summarize_depths
 
     curves: dict[tuple[str, float], list] = {}
     for r in results:
@@ -64,8 +64,8 @@ def _print_depth_table(results: list) -> None:
 
 def _train_sweep(config: Path, args: argparse.Namespace) -> Path:
     from .config import load_config
-    from .storage import STORAGE_ENV, redact
-    from .sweep import run_sweep
+    from .sweep.run import run_sweep
+    from .sweep.storage import STORAGE_ENV, redact
 
     cfg = load_config(config)
     summary = run_sweep(cfg, out=args.out, workers=args.workers, storage=args.storage,
@@ -75,7 +75,7 @@ def _train_sweep(config: Path, args: argparse.Namespace) -> Path:
               f"`depthplan worker --study {cfg.name}` (storage from --storage or ${STORAGE_ENV}), "
               f"then run this command again without --plan-only to collect the results")
         return summary.folder
-    from .fitting import load_runs
+    from .fitting.assemble import load_runs
 
     results = load_runs(summary.folder)
     print(f"{cfg.name}: {summary.n_runs} seed runs stored in {summary.folder} "
@@ -91,8 +91,8 @@ def _train_sweep(config: Path, args: argparse.Namespace) -> Path:
 
 
 def summary_url(cfg: object, args: argparse.Namespace) -> str:
-    from .storage import resolve_url
-    from .sweep import output_folder
+    from .sweep.run import output_folder
+    from .sweep.storage import resolve_url
 
     return resolve_url(args.storage, cfg.output.storage, output_folder(cfg, args.out))  # type: ignore[attr-defined]
 
@@ -103,7 +103,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
 
 
 def _cmd_fit(args: argparse.Namespace) -> int:
-    from .fitting import fit_path, format_summary
+    from .fitting.assemble import fit_path, format_summary
 
     fit, written = fit_path(Path(args.path), Path(args.json) if args.json else None,
                             save_fraction=args.save_fraction, n_boot=args.bootstrap)
@@ -113,7 +113,7 @@ def _cmd_fit(args: argparse.Namespace) -> int:
 
 
 def _cmd_report(args: argparse.Namespace) -> int:
-    from .reporting import write_report
+    from .reporting.write import write_report
 
     paths = write_report(Path(args.path), Path(args.out) if args.out else None)
     print(f"report written to {paths['html']}")
@@ -123,7 +123,7 @@ def _cmd_report(args: argparse.Namespace) -> int:
 def _cmd_demo(args: argparse.Namespace) -> int:
     if not DEMO_CONFIG.is_file():
         raise ConfigError(f"the demo sweep {DEMO_CONFIG} is missing; run from a checkout of depthplan")
-    from .reporting import write_report
+    from .reporting.write import write_report
 
     folder = _train_sweep(DEMO_CONFIG, args)
     paths = write_report(folder, None)
@@ -137,8 +137,8 @@ def _cmd_worker(args: argparse.Namespace) -> int:
     import torch
 
     from .config import config_from_dict
-    from .storage import STORAGE_ENV, SweepStore
-    from .sweep import work
+    from .sweep.run import work
+    from .sweep.storage import STORAGE_ENV, SweepStore
 
     url = args.storage or os.environ.get(STORAGE_ENV)
     if not url:

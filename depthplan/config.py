@@ -14,7 +14,16 @@ from typing import Any
 
 import yaml
 
-from .checks import Checker, as_choice, as_flag, as_float, as_int, as_text, int_list, show
+from .checks import (
+    Checker,
+    as_choice,
+    as_flag,
+    as_float,
+    as_int,
+    as_text,
+    int_list,
+    show,
+)
 from .errors import ConfigError
 
 SOURCES = ("synthetic", "digits", "iris", "wine", "breast_cancer", "csv", "npz", "npy")

@@ -49,7 +49,7 @@ def _modules_after(code: str) -> set[str]:
 
 
 def test_help_and_torch_free_modules_do_not_import_torch() -> None:
-    assert "torch" not in _modules_after("import depthplan.cli, depthplan.storage, depthplan.sweep, depthplan.config")
+    assert "torch" not in _modules_after("import depthplan.cli, depthplan.sweep.storage, depthplan.sweep.run, depthplan.config")
     proc = subprocess.run([sys.executable, "-X", "importtime", "-m", "depthplan", "--help"],
                           capture_output=True, text=True)
     assert proc.returncode == 0 and "usage: depthplan" in proc.stdout

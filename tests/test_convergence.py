@@ -6,7 +6,7 @@ import math
 import numpy as np
 import pytest
 
-from depthplan.convergence import Criterion, updates_to_converge, verdict
+from depthplan.train.convergence import Criterion, updates_to_converge, verdict
 
 
 def _gd_losses(lams: np.ndarray, e0: np.ndarray, eta: float, n_steps: int) -> list[float]:

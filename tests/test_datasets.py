@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 
 from depthplan.config import DataConfig
-from depthplan.datasets import load_dataset, synthetic_scenario
+from depthplan.train.datasets import load_dataset, synthetic_scenario
 from depthplan.errors import DataError
 
 

@@ -1,4 +1,4 @@
-"""Tests of depthplan.fitting.
+"""Tests of depthplan.fitting.assemble.
 
 Every data set here is invented (seeded synthetic runs drawn from a known law),
 and named as such; sources of the reference values are given beside each check.
@@ -16,6 +16,7 @@ import pytest
 from scipy import optimize, stats
 
 from depthplan import fitting as F
+from depthplan.fitting import assemble, depthlaw
 from depthplan.errors import ConfigError, ConvergenceWarning, DataError
 from depthplan.records import RunResult
 
@@ -133,8 +134,8 @@ def _coverage(reps: int, budget: float, n_boot: int, seed: int) -> tuple[float, 
     hits_boot = hits_t = 0
     for i in range(reps):
         runs = synthetic_runs(power(8000, -1.0), [1, 2, 3, 4, 6, 8], 8, 0.3, rng, budget=budget)
-        d = F._Arrays(*arrays(runs))
-        block, _ = F._power_law_block(d, n_boot, seed=i)
+        d = depthlaw._Arrays(*arrays(runs))
+        block, _ = depthlaw._power_law_block(d, n_boot, seed=i)
         lo, hi = block["slope_ci"]
         hits_boot += lo <= -1.0 <= hi
         lo, hi = block["slope_ci_analytic"]
@@ -263,7 +264,7 @@ def test_warns_when_segmented_and_smooth_models_disagree(monkeypatch):
     runs = synthetic_runs(broken(8000, -1.0, 1.0, 7.5), range(1, 13), 5, 0.1, rng)
     far = F.TwoTermFit(A=1.0, B=1.0, s=-1.0, r=1.0, sigma=0.1, loglik=0.0, minimum_depth=11.0,
                        converged=True)
-    monkeypatch.setattr(F, "fit_two_term", lambda *a, **k: far)
+    monkeypatch.setattr(assemble, "fit_two_term", lambda *a, **k: far)
     fit = F.fit_runs(runs, n_boot=60)
     assert any("disagree by more than one layer" in w for w in fit["warnings"])
 
@@ -378,7 +379,7 @@ def test_diffusion_summary_sits_beside_alpha():
 
 def test_alpha_one_half_means_slope_minus_one():
     # Common practice (DESIGN.md sections 2-3): free diffusion, alpha = 1/2, gives s = -1.
-    assert F._alpha(-1.0) == 0.5
+    assert depthlaw._alpha(-1.0) == 0.5
     rng = np.random.default_rng(19)
     fit = F.fit_runs(synthetic_runs(power(5000, -1.0), range(1, 9), 6, 0.15, rng), n_boot=200)
     lo, hi = fit["power_law"]["alpha_ci"]
@@ -508,7 +509,7 @@ def test_bad_inputs_are_refused():
 
 
 def test_import_leaves_torch_out():
-    code = "import sys, depthplan.fitting; print('torch' in sys.modules)"
+    code = "import sys, depthplan.fitting.assemble; print('torch' in sys.modules)"
     out = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True,
                          check=True, env={"PYTHONPATH": str(ROOT), "PATH": ""})
     assert out.stdout.strip() == "False"

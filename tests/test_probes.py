@@ -3,7 +3,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from depthplan.probes import displacement, gradient_snr_db, log_spaced_steps
+from depthplan.train.probes import displacement, gradient_snr_db, log_spaced_steps
 
 
 def _growth_exponent(steps: list[int], values: np.ndarray) -> float:

@@ -1,4 +1,4 @@
-"""Tests of depthplan.reporting: the hand-over report.
+"""Tests of depthplan.reporting.write: the hand-over report.
 
 Three inputs: a stored results folder cut from a real demo sweep
 (tests/data/report-folder, made by tests/data/make_report_fixture.py), a
@@ -28,9 +28,9 @@ import pytest
 from matplotlib.figure import Figure
 
 from depthplan.cli import main
-from depthplan.figures import plot_scaling
+from depthplan.reporting.figures import plot_scaling
 from depthplan.records import RunResult, write_runs_csv
-from depthplan.reporting import ensure_fit, write_report
+from depthplan.reporting.write import ensure_fit, write_report
 
 ROOT = Path(__file__).resolve().parents[1]
 FIXTURE = ROOT / "tests" / "data" / "report-folder"
@@ -311,7 +311,7 @@ def test_scaling_plot_draws_censored_and_diverged_runs_as_such(rates_report):
     fit = json.loads(paths["fit"].read_text())
     group = fit["by_learning_rate"][0]
     assert group["group"]["learning_rate"] == 0.02
-    from depthplan.tables import load_runs
+    from depthplan.fitting.inputs import load_runs
     runs = load_runs(folder)
     ax = Figure().subplots()
     drawn = {a.get_label(): a for a in plot_scaling(group, runs, ax, groups=[group])}
@@ -358,7 +358,7 @@ def test_report_command_writes_beside_a_table_and_says_where(tmp_path, capsys):
 
 
 def test_importing_reporting_leaves_torch_out():
-    code = "import sys, depthplan.reporting; print('torch' in sys.modules)"
+    code = "import sys, depthplan.reporting.write; print('torch' in sys.modules)"
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert done.stdout.strip() == "False"
 

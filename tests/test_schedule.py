@@ -11,8 +11,8 @@ import pytest
 
 from depthplan.config import AdaptiveConfig, TuneConfig, geometric_depths, load_config
 from depthplan.records import CellSpec, RunResult
-from depthplan.schedule import decide, early_budget, median_t, rate_at_edge, tuning_objective
-from depthplan.sweep import run_sweep
+from depthplan.sweep.schedule import decide, early_budget, median_t, rate_at_edge, tuning_objective
+from depthplan.sweep.run import run_sweep
 
 
 def _run(depth: int, seed: int, t: int, status: str = "converged", lr: float = 0.1, mode: str = "fixed") -> RunResult:

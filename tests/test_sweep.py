@@ -13,8 +13,8 @@ import pytest
 
 from depthplan.config import load_config
 from depthplan.errors import StoreError
-from depthplan.storage import SweepStore, local_url
-from depthplan.sweep import plan_cells, run_sweep
+from depthplan.sweep.storage import SweepStore, local_url
+from depthplan.sweep.run import plan_cells, run_sweep
 
 SLOW = """
 name: slow

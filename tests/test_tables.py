@@ -1,4 +1,4 @@
-"""Tests of depthplan.tables and of fit_path: reading results folders and measurement tables.
+"""Tests of depthplan.fitting.inputs and of fit_path: reading results folders and measurement tables.
 
 All tables here are invented for the tests.
 """
@@ -13,9 +13,9 @@ from pathlib import Path
 import pytest
 
 from depthplan.errors import DataError
-from depthplan.fitting import default_json_path, fit_path
+from depthplan.fitting.assemble import default_json_path, fit_path
 from depthplan.records import RunResult, write_runs_csv
-from depthplan.tables import eval_interval, load_runs, read_table
+from depthplan.fitting.inputs import eval_interval, load_runs, read_table
 
 # invented readings: T = 12000 / K with a little scatter, three seeds per depth
 ROWS = [(k, s, round(12000 / k * (1 + 0.03 * (s - 1)))) for k in (1, 2, 3, 4, 6) for s in range(3)]
@@ -124,7 +124,7 @@ def test_results_folder_jsonl_round_trip_with_probes(tmp_path):
 def test_torn_last_jsonl_record_is_skipped_but_a_torn_middle_is_an_error(tmp_path, caplog):
     good = json.dumps(record(1, 0, 100).to_dict())
     write(tmp_path / "runs.jsonl", f"{good}\n{good}\n{good[:40]}")
-    with caplog.at_level(logging.WARNING, logger="depthplan.tables"):
+    with caplog.at_level(logging.WARNING, logger="depthplan.fitting.inputs"):
         assert len(load_runs(tmp_path)) == 2
     assert "torn last record" in caplog.text
     write(tmp_path / "runs.jsonl", f"{good}\n{good[:40]}\n{good}\n")

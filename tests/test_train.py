@@ -14,12 +14,12 @@ import torch
 import torch.nn.functional as F
 
 from depthplan.config import ConvergeConfig, DataConfig, ModelConfig, ProbeConfig, TrainConfig
-from depthplan.datasets import load_dataset
+from depthplan.train.datasets import load_dataset
 from depthplan.errors import ConfigError
-from depthplan.models import build_mlp
+from depthplan.train.models import build_mlp
 from depthplan.records import CellSpec
-from depthplan.stacked import _draw_gradients, _Stack
-from depthplan.train import (BatchStream, _eval_subset, stacked_weights, train_cell,
+from depthplan.train.stacked import _draw_gradients, _Stack
+from depthplan.train.loop import (BatchStream, _eval_subset, stacked_weights, train_cell,
                              train_plain)
 
 NO_PROBES = ProbeConfig(displacement=False, snr=False)
@@ -203,9 +203,9 @@ MEMORY_SCRIPT = """
     import json, resource, sys
     import numpy as np, torch
     from depthplan.config import ConvergeConfig, ModelConfig, ProbeConfig, TrainConfig
-    from depthplan.datasets import Dataset
+    from depthplan.train.datasets import Dataset
     from depthplan.records import CellSpec
-    from depthplan.train import train_cell
+    from depthplan.train.loop import train_cell
     rng = np.random.default_rng(0)
     x = rng.standard_normal((2000, 64)).astype(np.float32)
     y = rng.integers(0, 10, 2000)

@@ -20,8 +20,8 @@ from pathlib import Path
 import pytest
 
 from depthplan.config import load_config
-from depthplan.storage import SweepStore, local_url
-from depthplan.sweep import plan_cells
+from depthplan.sweep.storage import SweepStore, local_url
+from depthplan.sweep.run import plan_cells
 
 CONFIG = """
 name: crash

@@ -15,7 +15,7 @@ from pathlib import Path
 
 from depthplan.config import load_config
 from depthplan.records import RunResult, write_runs_csv
-from depthplan.tables import read_jsonl
+from depthplan.fitting.inputs import read_jsonl
 
 HERE = Path(__file__).resolve().parent
 SEEDS = (0, 1, 2)

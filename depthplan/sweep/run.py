@@ -20,9 +20,16 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Callable
 
-from .config import SweepFile, config_from_dict, dump_config
-from .errors import ConfigError, DepthplanError, RunFailed, StoreError
-from .records import CellSpec, RunResult, write_csv, write_runs_csv, write_runs_jsonl, write_text_atomic
+from ..config import SweepFile, config_from_dict, dump_config
+from ..errors import ConfigError, DepthplanError, RunFailed, StoreError
+from ..records import (
+    CellSpec,
+    RunResult,
+    write_csv,
+    write_runs_csv,
+    write_runs_jsonl,
+    write_text_atomic,
+)
 from .storage import Heartbeat, SweepStore, redact, resolve_url, tuning_storage
 
 log = logging.getLogger(__name__)
@@ -164,9 +171,9 @@ def work(store: SweepStore, cfg: SweepFile, *, progress: Callable[[int], None] |
     `linger_s`, an idle worker waits that long for newly planned cells (the next
     round of an adaptive sweep) before it stops.
     """
-    from .datasets import load_dataset
+    from ..train.datasets import load_dataset
+    from ..train.loop import train_cell
     from .schedule import early_budget
-    from .train import train_cell
 
     data = load_dataset(cfg.data)
     done = 0

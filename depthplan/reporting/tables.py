@@ -15,24 +15,22 @@ import statistics
 import subprocess
 from importlib import metadata
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
 import numpy as np
 
-from . import __version__
+from .. import __version__
 from . import figures as F
-from .report_answer import badge, save_percent
-from .report_markup import Block, Words
-
-if TYPE_CHECKING:
-    from .reporting import ReportInputs
+from .answer import badge, save_percent
+from .inputs import ReportInputs
+from .markup import Block, Words
 
 _PACKAGES = ("numpy", "scipy", "matplotlib", "torch", "optuna", "scikit-learn", "pyyaml")
 
 
 # ---------------------------------------------------------------- tables
 
-def fit_table_blocks(inp: "ReportInputs", w: Words) -> list[Block]:
+def fit_table_blocks(inp: ReportInputs, w: Words) -> list[Block]:
     """The fitted quantities with their intervals."""
     fit = inp.fit
     pl, rev, plan = fit["power_law"], fit["reversal"], fit["planning"]
@@ -100,7 +98,7 @@ def _probe_by_depth(fit: dict[str, Any]) -> dict[int, dict[str, float | None]]:
     return out
 
 
-def depth_table_blocks(inp: "ReportInputs", w: Words) -> list[Block]:
+def depth_table_blocks(inp: ReportInputs, w: Words) -> list[Block]:
     """One row per depth: runs, T, cost, accuracy and the probe measures."""
     fit, runs = inp.fit, inp.primary_runs
     probes = _probe_by_depth(fit)
@@ -159,7 +157,7 @@ def _rate_product_words(g: dict[str, Any]) -> str:
             f"while T·lr·K changes {p_ratio:.2f}-fold, {verdict}.")
 
 
-def rate_blocks(inp: "ReportInputs", w: Words) -> list[Block]:
+def rate_blocks(inp: ReportInputs, w: Words) -> list[Block]:
     """Rate groups side by side, and the effective-rate effect in words."""
     fit = inp.fit
     entries = fit.get("by_learning_rate") or []
@@ -206,7 +204,7 @@ def rate_blocks(inp: "ReportInputs", w: Words) -> list[Block]:
     return blocks
 
 
-def tuning_blocks(inp: "ReportInputs") -> list[Block]:
+def tuning_blocks(inp: ReportInputs) -> list[Block]:
     """Per depth: trials, the rate the final seeds used, and whether it sits at the search edge."""
     tune = inp.config.train.tune if inp.config is not None else None
     chosen = {r.depth: r.learning_rate for r in inp.runs if r.lr_mode == "tuned"}
@@ -229,7 +227,7 @@ def tuning_blocks(inp: "ReportInputs") -> list[Block]:
     return [("table", header, rows, "numbers")]
 
 
-def rounds_blocks(inp: "ReportInputs") -> list[Block]:
+def rounds_blocks(inp: ReportInputs) -> list[Block]:
     return [("h", 2, "Adaptive rounds", "rounds"),
             ("ul", [f"Round {i}: {r['reason']}" for i, r in enumerate(inp.rounds, 1)])]
 
@@ -256,7 +254,7 @@ def _sentence(text: str) -> str:
     return text[0].upper() + text[1:] + ("" if text.endswith(".") else ".")
 
 
-def warning_blocks(inp: "ReportInputs", w: Words) -> list[Block]:
+def warning_blocks(inp: ReportInputs, w: Words) -> list[Block]:
     notes = list(inp.fit.get("warnings") or [])
     notes += [n for n in (timing_note(inp.fit),) if n]
     body: Block = ("ul", [_sentence(n) for n in notes]) if notes else \
@@ -309,7 +307,7 @@ def _versions() -> str:
     return ", ".join(found)
 
 
-def _machine_rows(inp: "ReportInputs") -> list[list[str]]:
+def _machine_rows(inp: ReportInputs) -> list[list[str]]:
     """The CPU that trained (when sweep.json records it) and the one that wrote the report."""
     rows = []
     trained = inp.info.get("machine")
@@ -320,7 +318,7 @@ def _machine_rows(inp: "ReportInputs") -> list[list[str]]:
     return rows + [["CPU of this report", _cpu() + note]]
 
 
-def provenance_blocks(inp: "ReportInputs") -> list[Block]:
+def provenance_blocks(inp: ReportInputs) -> list[Block]:
     """Where every number came from: inputs and their hashes, config, seeds, software, machine."""
     fit, info = inp.fit, inp.info
     runs_file = next((p for p in (inp.path / "runs.jsonl", inp.path / "runs.csv") if p.is_file()),

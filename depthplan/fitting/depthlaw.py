@@ -17,10 +17,16 @@ from typing import Any, Sequence
 import numpy as np
 from scipy import stats
 
-from .estimators import (_breakpoint_grid, _design_power, _segmented_profile, _tobit_batch, bic,
-                         fit_power_law, fit_segmented)
-from .records import RunResult
-
+from ..records import RunResult
+from .estimators import (
+    _breakpoint_grid,
+    _design_power,
+    _segmented_profile,
+    _tobit_batch,
+    bic,
+    fit_power_law,
+    fit_segmented,
+)
 
 # ---------------------------------------------------------------- per-depth table
 

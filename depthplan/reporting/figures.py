@@ -23,7 +23,8 @@ from matplotlib.axes import Axes
 from matplotlib.figure import Figure
 from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter, NullLocator
 
-from .records import RunResult
+from ..fitting.inputs import runs_of_group
+from ..records import RunResult
 
 # Okabe-Ito: black, orange, sky blue, bluish green, yellow, blue, vermillion, reddish purple
 OKABE_ITO = ("#000000", "#E69F00", "#56B4E9", "#009E73", "#F0E442", "#0072B2", "#D55E00", "#CC79A7")
@@ -68,18 +69,6 @@ def save_figure(fig: Figure, folder: Path, name: str) -> tuple[Path, Path]:
 
 
 # ---------------------------------------------------------------- shared helpers
-
-def runs_of_group(group: dict[str, Any] | None, runs: Sequence[RunResult]) -> list[RunResult]:
-    """The runs a fit group describes (fitting groups by rate: each fixed rate, and all tuned runs)."""
-    runs = [r for r in runs if r.lr_mode != "tuning"]
-    if not group:
-        return list(runs)
-    if group.get("lr_mode") == "tuned":
-        return [r for r in runs if r.lr_mode == "tuned"]
-    lr = group.get("learning_rate")
-    return [r for r in runs if r.lr_mode != "tuned" and (
-        lr is None or (isinstance(r.learning_rate, (int, float)) and math.isclose(r.learning_rate, lr)))]
-
 
 def group_label(group: dict[str, Any] | None) -> str:
     """Short words for a rate group: 'fixed rate 0.02', 'rate tuned per depth'."""
@@ -232,7 +221,7 @@ def _law_label(fit: dict[str, Any], prefix: str = "") -> str:
 def _draw_law(ax: Axes, fit: dict[str, Any], colour: str, line: Any, prefix: str,
               band_label: str | None) -> list[Artist]:
     """The fitted law with its 95 % band, and its dotted extension to any extrapolated figure."""
-    from .fitting import power_law_curve
+    from ..fitting.assemble import power_law_curve
 
     c = fit["curve"]
     out: list[Artist] = []
@@ -280,7 +269,7 @@ def _draw_reversal(ax: Axes, fit: dict[str, Any], colour: str, prefix: str = "")
 
 
 def _curve_value(fit: dict[str, Any], k: float) -> float | None:
-    from .fitting import power_law_curve
+    from ..fitting.assemble import power_law_curve
 
     c = fit["curve"]
     value = _interp_loglog(c["depths"], c["median"], k)

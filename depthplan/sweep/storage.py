@@ -25,8 +25,8 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from .errors import StoreError
-from .records import CellSpec, RunResult
+from ..errors import StoreError
+from ..records import CellSpec, RunResult
 
 log = logging.getLogger(__name__)
 

@@ -18,7 +18,7 @@ from typing import Sequence
 import numpy as np
 from scipy import optimize, special
 
-from .errors import ConvergenceWarning
+from ..errors import ConvergenceWarning
 
 _LOG_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
 _GRID = 40             # breakpoint grid points of the segmented profile

@@ -58,19 +58,43 @@ from typing import Any, Sequence
 import numpy as np
 from scipy import stats
 
-from .depthlaw import (_Arrays, _alpha, _ci, _draws, _gain, _location, _power_law_block,
-                       _reversal_block, _with_alpha, summarize_depths)
-from .diffusion import _snr_levels, diffusion_summary, growth_exponent, snr_drop_db, transition_step
-from .errors import ConvergenceWarning, DataError
-from .estimators import (_GRID, _LOG_SQRT_2PI, PowerLawFit, SegmentedFit, TwoTermFit,
-                         _breakpoint_grid, _design_power, _design_segmented, _olsen_derivatives,
-                         _olsen_loglik, _prepare, _segmented_profile, _tobit_batch, _two_term_nll,
-                         bic, fit_power_law, fit_segmented, fit_two_term)
-from .planning import (_K_MAX, _curve_block, _planning_block, compute_optimal_depth,
-                       fit_cost_model, last_depth_worth_adding, log_t_curve)
-from .records import STATUSES, RunResult
-from .summary import _ci_text, _describe, _group_warnings, _plural, format_summary
-from .tables import eval_interval, load_runs, read_sweep_info
+from ..errors import DataError
+from ..records import STATUSES, RunResult
+from .depthlaw import (
+    _Arrays,
+    _gain,
+    _location,
+    _power_law_block,
+    _reversal_block,
+    _with_alpha,
+    summarize_depths,
+)
+from .diffusion import (
+    diffusion_summary,
+    growth_exponent,
+    snr_drop_db,
+    transition_step,
+)
+from .estimators import (
+    PowerLawFit,
+    SegmentedFit,
+    TwoTermFit,
+    _tobit_batch,
+    bic,
+    fit_power_law,
+    fit_segmented,
+    fit_two_term,
+)
+from .inputs import eval_interval, load_runs, read_sweep_info
+from .planning import (
+    _curve_block,
+    _planning_block,
+    compute_optimal_depth,
+    fit_cost_model,
+    last_depth_worth_adding,
+    log_t_curve,
+)
+from .summary import _describe, _group_warnings, _plural, format_summary
 
 __all__ = [
     "SCHEMA", "fit_runs", "fit_path", "default_json_path", "power_law_curve", "load_runs",
@@ -248,7 +272,7 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
         DataError: fewer than three depths, no converged runs at two depths, or
             no runs at all. ConfigError: save_fraction or n_boot out of range.
     """
-    from .errors import ConfigError
+    from ..errors import ConfigError
     if not 0 < save_fraction < 1:
         raise ConfigError(f"save_fraction: must be between 0 and 1; got {save_fraction}")
     if n_boot < 20:

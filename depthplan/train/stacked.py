@@ -13,7 +13,7 @@ import numpy as np
 import torch
 import torch.nn.functional as F
 
-from .config import TrainConfig
+from ..config import TrainConfig
 from .probes import gradient_snr_db
 
 #: Largest (n_seeds x rows x width) activation block of one evaluation pass (4 Mi values, 16 MB in float32).

@@ -13,8 +13,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from .records import RunResult
-
+from ..records import RunResult
 
 # ---------------------------------------------------------------- one probe series
 

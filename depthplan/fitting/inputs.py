@@ -25,10 +25,10 @@ import logging
 import math
 from dataclasses import fields
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any, Callable, Sequence
 
-from .errors import DataError
-from .records import RUN_COLUMNS, STATUSES, RunResult
+from ..errors import DataError
+from ..records import RUN_COLUMNS, STATUSES, RunResult
 
 log = logging.getLogger(__name__)
 
@@ -319,3 +319,15 @@ def eval_interval(runs: list[RunResult], sweep_info: dict[str, Any] | None = Non
             if gaps:
                 found.append(max(gaps))
     return max(found) if found else None
+
+
+def runs_of_group(group: dict[str, Any] | None, runs: Sequence[RunResult]) -> list[RunResult]:
+    """The runs a fit group describes (fitting groups by rate: each fixed rate, and all tuned runs)."""
+    runs = [r for r in runs if r.lr_mode != "tuning"]
+    if not group:
+        return list(runs)
+    if group.get("lr_mode") == "tuned":
+        return [r for r in runs if r.lr_mode == "tuned"]
+    lr = group.get("learning_rate")
+    return [r for r in runs if r.lr_mode != "tuned" and (
+        lr is None or (isinstance(r.learning_rate, (int, float)) and math.isclose(r.learning_rate, lr)))]

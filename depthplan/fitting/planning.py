@@ -54,7 +54,7 @@ def last_depth_worth_adding(model: str, params: np.ndarray, save_fraction: float
     ks = np.arange(1, k_max + 2)
     lt = log_t_curve(model, params, ks)
     saving = 1.0 - np.exp(lt[:, 1:] - lt[:, :-1])        # (B, k_max)
-    small = saving < save_fraction
+    small = saving < save_fraction - 1e-9               # a saving of exactly the fraction is not "less"
     first = np.argmax(small, axis=1)
     return np.where(small.any(1), ks[first], np.nan).astype(float)
 
@@ -146,3 +146,13 @@ def _curve_block(model: str, point: np.ndarray, draws: np.ndarray, k_lo: float,
         lo = hi = np.full_like(grid, np.nan)
     return {"model": model, "depths": grid.tolist(), "median": mid.tolist(),
             "lo": lo.tolist(), "hi": hi.tolist()}
+
+
+def total_cost_curve(fit: dict[str, Any]) -> tuple[np.ndarray, np.ndarray] | None:
+    """(depths, seconds): the fitted T along `curve` times the fitted seconds per update."""
+    cost = fit["planning"]["compute_optimal_depth"].get("cost_model")
+    if not cost:
+        return None
+    k = np.asarray(fit["curve"]["depths"], float)
+    return k, np.asarray(fit["curve"]["median"], float) * (
+        cost["seconds_intercept"] + cost["seconds_per_layer"] * k)

@@ -10,7 +10,6 @@ from typing import Any, Sequence
 
 from .depthlaw import _Arrays
 
-
 # ---------------------------------------------------------------- wording
 
 def _plural(n: int, noun: str) -> str:

@@ -15,10 +15,23 @@ from matplotlib.cm import ScalarMappable
 from matplotlib.colors import ListedColormap, Normalize
 from matplotlib.figure import Figure
 
-from .figures import (BLUE, GREY, GROUP_STYLES, LINE_STYLES, MARKERS, SKY_BLUE, VERMILLION, ci_words,
-                      depth_panel, fitted_groups, group_label, log_axis_numbers, ordered_colour)
-from .records import RunResult
-
+from ..fitting.planning import total_cost_curve
+from ..records import RunResult
+from .figures import (
+    BLUE,
+    GREY,
+    GROUP_STYLES,
+    LINE_STYLES,
+    MARKERS,
+    SKY_BLUE,
+    VERMILLION,
+    ci_words,
+    depth_panel,
+    fitted_groups,
+    group_label,
+    log_axis_numbers,
+    ordered_colour,
+)
 
 # ---------------------------------------------------------------- cost per depth
 
@@ -85,16 +98,6 @@ def plot_total_cost(fit: dict[str, Any], runs: Sequence[RunResult], ax: Axes) ->
     depth_panel(ax, fit["depths_swept"], "seconds of compute to converge",
                 "cost of training to convergence")
     return out
-
-
-def total_cost_curve(fit: dict[str, Any]) -> tuple[np.ndarray, np.ndarray] | None:
-    """(depths, seconds): the fitted T along `curve` times the fitted seconds per update."""
-    cost = fit["planning"]["compute_optimal_depth"].get("cost_model")
-    if not cost:
-        return None
-    k = np.asarray(fit["curve"]["depths"], float)
-    return k, np.asarray(fit["curve"]["median"], float) * (
-        cost["seconds_intercept"] + cost["seconds_per_layer"] * k)
 
 
 # ---------------------------------------------------------------- training dynamics

@@ -21,8 +21,8 @@ import warnings
 from dataclasses import dataclass, field
 from typing import Any, Callable
 
-from .config import AdaptiveConfig, SweepFile, TuneConfig
-from .records import CellSpec, RunResult
+from ..config import AdaptiveConfig, SweepFile, TuneConfig
+from ..records import CellSpec, RunResult
 
 log = logging.getLogger(__name__)
 
@@ -92,8 +92,8 @@ def tune_depth(cfg: SweepFile, storage: Any, depth: int, *, progress: Callable[[
     import optuna
     from optuna.trial import TrialState
 
-    from .datasets import load_dataset
-    from .train import train_cell
+    from ..train.datasets import load_dataset
+    from ..train.loop import train_cell
 
     tune: TuneConfig = cfg.train.tune  # type: ignore[assignment]
     sampler = optuna.samplers.TPESampler(seed=depth, n_startup_trials=min(4, tune.trials))
@@ -184,8 +184,8 @@ def decide(runs: list[RunResult], policy: AdaptiveConfig, *, round_no: int, cpu_
     or, while T still falls, deeper depths; and `policy.extra_seeds` seeds at
     the depth whose T spreads most.
     """
-    from .errors import ConvergenceWarning, DataError
-    from .fitting import fit_runs
+    from ..errors import ConvergenceWarning, DataError
+    from ..fitting.assemble import fit_runs
 
     swept = sorted({r.depth for r in runs})
     try:

@@ -11,8 +11,8 @@ import math
 import torch
 from torch import nn
 
-from .config import ModelConfig
-from .errors import ConfigError
+from ..config import ModelConfig
+from ..errors import ConfigError
 
 #: Gain of each activation for He-style init (torch.nn.init.calculate_gain; gelu takes relu's).
 ACTIVATION_GAIN = {"tanh": 5.0 / 3.0, "relu": math.sqrt(2.0), "gelu": math.sqrt(2.0), "sigmoid": 1.0}

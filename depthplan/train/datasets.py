@@ -12,8 +12,8 @@ from pathlib import Path
 
 import numpy as np
 
-from .config import DataConfig
-from .errors import DataError
+from ..config import DataConfig
+from ..errors import DataError
 
 
 @dataclass(frozen=True)

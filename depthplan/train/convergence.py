@@ -7,7 +7,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
-from .config import ConvergeConfig
+from ..config import ConvergeConfig
 
 
 @dataclass(frozen=True)

@@ -30,13 +30,13 @@ import numpy as np
 import torch
 import torch.nn.functional as F
 
-from .config import ModelConfig, ProbeConfig, TrainConfig
+from ..config import ModelConfig, ProbeConfig, TrainConfig
+from ..errors import ConfigError
+from ..records import CellSpec, RunResult
 from .convergence import Criterion, verdict
 from .datasets import Dataset
-from .errors import ConfigError
 from .models import build_mlp, count_params, init_weights
 from .probes import log_spaced_steps
-from .records import CellSpec, RunResult
 from .stacked import _evaluate, _gradient_snr, _minibatches, _Optimizer, _Stack
 
 ProgressFn = Callable[[int], None]

@@ -22,44 +22,31 @@ import json
 import logging
 import math
 import shutil
-from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Sequence
 
+from ..errors import DataError, DepthplanError
+from ..fitting.assemble import SCHEMA, fit_path
+from ..fitting.inputs import load_runs, read_sweep_info
+from ..records import write_text_atomic
+from . import dynamics_figures as TF
 from . import figures as F
-from . import training_figures as TF
-from .errors import DataError, DepthplanError
-from .fitting import SCHEMA, fit_path
-from .records import RunResult, write_text_atomic
-from .report_markup import Block, FigureFile, Words, to_html, to_markdown
-from .report_answer import answer_blocks, dynamics_words
-from .report_tables import (depth_table_blocks, fit_table_blocks, provenance_blocks, rate_blocks,
-                            rounds_blocks, tuning_blocks, warning_blocks)
-from .tables import load_runs, read_sweep_info
+from .answer import answer_blocks, dynamics_words
+from .inputs import ReportInputs
+from .markup import Block, FigureFile, Words, to_html, to_markdown
+from .tables import (
+    depth_table_blocks,
+    fit_table_blocks,
+    provenance_blocks,
+    rate_blocks,
+    rounds_blocks,
+    tuning_blocks,
+    warning_blocks,
+)
 
 log = logging.getLogger(__name__)
 
-__all__ = ["write_report", "ensure_fit", "ReportInputs"]
-
-
-@dataclass
-class ReportInputs:
-    """Everything a report is written from."""
-
-    path: Path                       # the results folder or table given
-    kind: str                        # results_folder | table
-    fit: dict[str, Any]
-    fit_note: str                    # how fit.json came about (reused / refitted and why)
-    runs: list[RunResult]
-    info: dict[str, Any] = field(default_factory=dict)        # sweep.json
-    config: Any = None                                        # SweepFile, when config.yaml reads
-    config_text: str = ""
-    tuning: list[dict[str, Any]] = field(default_factory=list)
-    rounds: list[dict[str, Any]] = field(default_factory=list)
-
-    @property
-    def primary_runs(self) -> list[RunResult]:
-        return F.runs_of_group(self.fit.get("group"), self.runs)
+__all__ = ["write_report", "ensure_fit"]
 
 
 # ---------------------------------------------------------------- fit.json: reuse or refit
@@ -133,7 +120,7 @@ def _read_config(folder: Path) -> tuple[Any, str]:
         return None, ""
     text = path.read_text(encoding="utf-8")
     try:
-        from .config import load_config
+        from ..config import load_config
 
         return load_config(path), text
     except DepthplanError as exc:   # e.g. a data file moved since: keep the text, skip the details

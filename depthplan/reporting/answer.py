@@ -10,16 +10,14 @@ from __future__ import annotations
 import math
 import statistics
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
 import numpy as np
 
+from ..fitting.planning import total_cost_curve
 from . import figures as F
-from .report_markup import EXTRAPOLATED, Block, Words
-from .training_figures import total_cost_curve
-
-if TYPE_CHECKING:
-    from .reporting import ReportInputs
+from .inputs import ReportInputs
+from .markup import EXTRAPOLATED, Block, Words
 
 _FLAT = 0.10          # "nearly flat": fitted total compute within this fraction of its minimum
 def badge(flag: Any) -> str:
@@ -206,7 +204,7 @@ def _rate_words(cfg: Any) -> str:
     return f"learning rates {fixed} (one curve each)"
 
 
-def _what_was_swept(inp: "ReportInputs") -> str:
+def _what_was_swept(inp: ReportInputs) -> str:
     fit = inp.fit
     depths = ", ".join(str(k) for k in fit["depths_swept"])
     seeds = sorted({row["runs"] for row in fit["per_depth"]})
@@ -233,7 +231,7 @@ def _what_was_swept(inp: "ReportInputs") -> str:
             f"{cfg.train.eval_every} updates) at which {_criterion_words(cfg)}.")
 
 
-def _n_params(inp: "ReportInputs") -> str:
+def _n_params(inp: ReportInputs) -> str:
     rec = inp.fit["planning"].get("recommended_depth")
     sized = [r for r in inp.primary_runs if r.n_params]
     if not sized or rec is None:
@@ -243,7 +241,7 @@ def _n_params(inp: "ReportInputs") -> str:
     return f" (about {n:,.0f} parameters at K = {k})"
 
 
-def _caution(inp: "ReportInputs", w: Words) -> str:
+def _caution(inp: ReportInputs, w: Words) -> str:
     fit = inp.fit
     if inp.kind == "table":
         text = ("**Read this as a prior, not a guarantee.** These figures come only from the jobs in "
@@ -274,7 +272,7 @@ def _caution(inp: "ReportInputs", w: Words) -> str:
     return text
 
 
-def answer_blocks(inp: "ReportInputs", w: Words) -> list[Block]:
+def answer_blocks(inp: ReportInputs, w: Words) -> list[Block]:
     """The answer first: the depth to plan for, why, the three figures, how sure, what was swept."""
     fit = inp.fit
     plan = fit["planning"]
