@@ -29,10 +29,10 @@ class Checker:
             return {}
         for key in got:
             if key not in allowed:
-                near = difflib.get_close_matches(str(key), allowed, n=1)
+                near = difflib.get_close_matches(clip(str(key)), allowed, n=1)
                 hint = f" (did you mean '{near[0]}'?)" if near else f"; allowed: {', '.join(allowed)}"
                 where = f" in {path}" if path else ""
-                self.problems.append(f"unknown key '{key}'{where}{hint}")
+                self.problems.append(f"unknown key '{clip(str(key))}'{where}{hint}")
         return got
 
     def take(self, d: dict[str, Any], path: str, key: str, check: Callable[[Any], Any], default: Any) -> Any:
@@ -45,8 +45,24 @@ class Checker:
             return default
 
 
+#: Longest echo of a user's value in a message; longer ones end in "…" so an error stays one short line.
+SHOW_MAX = 80
+
+
+def clip(text: str, limit: int = SHOW_MAX) -> str:
+    """`text` cut to `limit` characters, the last one "…" when anything was cut."""
+    return text if len(text) <= limit else text[:limit - 1] + "…"
+
+
 def show(v: Any) -> str:
-    return repr(v) if isinstance(v, str) else json.dumps(v, default=str)
+    """A value as the user wrote it (strings quoted), at most SHOW_MAX characters."""
+    if isinstance(v, str):
+        return clip(repr(v[:SHOW_MAX + 2]))
+    try:
+        text = json.dumps(v, default=str)
+    except (ValueError, RecursionError):  # a structure that contains itself
+        text = f"a {type(v).__name__} that contains itself"
+    return clip(text)
 
 
 def as_int(lo: int = 1) -> Callable[[Any], int]:
@@ -74,7 +90,7 @@ def as_float(lo: float = 0.0, hi: float = math.inf, lo_open: bool = True, hi_ope
 def as_choice(options: tuple[str, ...]) -> Callable[[Any], str]:
     def check(v: Any) -> str:
         if not isinstance(v, str) or v.lower() not in options:
-            near = difflib.get_close_matches(str(v).lower(), options, n=1)
+            near = difflib.get_close_matches(clip(str(v)).lower(), options, n=1)
             hint = f" (did you mean '{near[0]}'?)" if near else ""
             raise ValueError(f"must be one of {', '.join(options)}, got {show(v)}{hint}")
         return v.lower()

@@ -21,10 +21,12 @@ from .checks import (
     as_float,
     as_int,
     as_text,
+    clip,
     int_list,
     show,
 )
 from .errors import ConfigError
+from .urls import has_credentials
 
 SOURCES = ("synthetic", "digits", "iris", "wine", "breast_cancer", "csv", "npz", "npy")
 ACTIVATIONS = ("tanh", "relu", "gelu", "sigmoid")
@@ -199,7 +201,7 @@ def _data(c: Checker, raw: Any, base: Path) -> DataConfig:
         kw["label"] = "y"
     for key in ("path", "label_path"):
         if kw[key] is not None and source in ("csv", "npz", "npy") and not Path(kw[key]).is_file():
-            c.add(f"data.{key}", f"no such file: {kw[key]}")
+            c.add(f"data.{key}", f"no such file: {clip(str(kw[key]))}")
     return DataConfig(**kw)
 
 
@@ -349,13 +351,18 @@ def _probes(c: Checker, raw: Any) -> ProbeConfig:
     )
 
 
+def _holds_credentials(url: str) -> bool:
+    """A user name or password in the authority, or a password/secret/token query key."""
+    return ("://" in url and "@" in url.split("://", 1)[1].split("/", 1)[0]) or has_credentials(url)
+
+
 def _output(c: Checker, raw: Any, base: Path) -> OutputConfig:
     d = c.keys("output", raw, tuple(OutputConfig.__dataclass_fields__))
     out = c.take(d, "output", "dir", as_text, None)
     if out is not None and not Path(out).expanduser().is_absolute():
         out = str((base / out).resolve())
     storage = c.take(d, "output", "storage", as_text, None)
-    if storage is not None and "://" in storage and "@" in storage.split("://", 1)[1].split("/", 1)[0]:
+    if storage is not None and _holds_credentials(storage):
         c.add("output.storage", "must not hold credentials; set DEPTHPLAN_STORAGE in the environment or pass --storage")
     return OutputConfig(dir=out, storage=storage)
 
@@ -402,6 +409,87 @@ def parse_config(raw: Any, *, base_dir: Path, where: str = "sweep file") -> Swee
     return cfg
 
 
+#: Limits on a sweep file: bytes, aliases (`*name`), and nodes once aliases are expanded. A real
+#: sweep file is a few hundred bytes with a handful of anchors; the limits stop "billion laughs"
+#: documents (nested aliases that expand exponentially) before they are built or echoed.
+MAX_FILE_BYTES = 1_000_000
+MAX_ALIASES = 100
+MAX_NODES = 100_000
+
+
+class _TooBig(Exception):
+    """A YAML document over one of the limits above (the text says which)."""
+
+
+class _BoundedLoader(yaml.SafeLoader):
+    """SafeLoader that refuses more than MAX_ALIASES aliases while composing."""
+
+    def __init__(self, stream: str) -> None:
+        super().__init__(stream)
+        self._aliases = 0
+
+    def compose_node(self, parent: Any, index: Any) -> Any:
+        if self.check_event(yaml.AliasEvent):
+            self._aliases += 1
+            if self._aliases > MAX_ALIASES:
+                mark = self.peek_event().start_mark
+                raise _TooBig(f"line {mark.line + 1}: more than {MAX_ALIASES} aliases (*name); "
+                              "write the values out instead")
+        return super().compose_node(parent, index)
+
+
+def _expanded_size(root: yaml.Node) -> int:
+    """Nodes in the document once every alias is expanded (shared nodes counted each time used).
+
+    A scalar counts once more per 64 characters, so an aliased long string is not free.
+    Iterative and memoized, so it costs one visit per distinct node; refuses a node
+    that contains itself and stops counting past MAX_NODES.
+    """
+    size: dict[int, int] = {}
+    open_: set[int] = set()
+    stack: list[tuple[yaml.Node, bool]] = [(root, False)]
+    while stack:
+        node, done = stack.pop()
+        key = id(node)
+        if isinstance(node, yaml.MappingNode):
+            kids = [n for pair in node.value for n in pair]
+        elif isinstance(node, yaml.SequenceNode):
+            kids = list(node.value)
+        else:
+            kids = []
+        if done:
+            own = 1 + len(node.value) // 64 if isinstance(node, yaml.ScalarNode) else 1
+            open_.discard(key)
+            size[key] = min(MAX_NODES + 1, own + sum(size[id(k)] for k in kids))
+            continue
+        if key in size:
+            continue
+        if key in open_:
+            raise _TooBig(f"line {node.start_mark.line + 1}: an alias refers to a value that contains it")
+        open_.add(key)
+        stack.append((node, True))
+        for kid in kids:
+            if id(kid) in open_:
+                raise _TooBig(f"line {kid.start_mark.line + 1}: an alias refers to a value that contains it")
+            if id(kid) not in size:
+                stack.append((kid, False))
+    return size[id(root)]
+
+
+def _load_yaml(text: str) -> Any:
+    """yaml.safe_load within the limits above (raises _TooBig or yaml.YAMLError)."""
+    loader = _BoundedLoader(text)
+    try:
+        node = loader.get_single_node()
+        if node is None:
+            return None
+        if _expanded_size(node) > MAX_NODES:
+            raise _TooBig(f"expands to more than {MAX_NODES} values once its aliases (*name) are filled in")
+        return loader.construct_document(node)
+    finally:
+        loader.dispose()
+
+
 def load_config(path: str | Path) -> SweepFile:
     """Read and check a YAML sweep file.
 
@@ -412,12 +500,23 @@ def load_config(path: str | Path) -> SweepFile:
     if not p.is_file():
         raise ConfigError(f"{p}: no such sweep file")
     try:
-        raw = yaml.safe_load(p.read_text())
+        with p.open("rb") as fh:
+            data = fh.read(MAX_FILE_BYTES + 1)
+    except OSError as exc:
+        raise ConfigError(f"{p}: cannot read the sweep file ({exc.strerror or type(exc).__name__})") from None
+    if len(data) > MAX_FILE_BYTES:
+        raise ConfigError(f"{p}: larger than {MAX_FILE_BYTES // 1_000_000} MB; a sweep file is a few hundred bytes")
+    try:
+        raw = _load_yaml(data.decode("utf-8"))
+    except _TooBig as exc:
+        raise ConfigError(f"{p}: refused, {exc}") from None
+    except RecursionError:
+        raise ConfigError(f"{p}: refused, values nested too deeply") from None
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)
         at = f" line {mark.line + 1}, column {mark.column + 1}" if mark else ""
         problem = getattr(exc, "problem", None) or str(exc).splitlines()[0]
-        raise ConfigError(f"{p}:{at}: not valid YAML ({problem})") from None
+        raise ConfigError(f"{p}:{at}: not valid YAML ({clip(str(problem), 120)})") from None
     except UnicodeDecodeError:
         raise ConfigError(f"{p}: not a text file") from None
     return parse_config(raw, base_dir=p.resolve().parent, where=str(p))

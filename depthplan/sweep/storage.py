@@ -10,7 +10,9 @@ records a heartbeat while it trains; a trial whose heartbeat goes stale is
 failed and re-enqueued (Optuna's `RetryHeartbeatStaleTrialCallback`). A
 finished cell stores every seed's `RunResult` as a JSON attribute and becomes
 COMPLETE in the same step that checks it is still the worker's, so a cell is
-recorded at most once; results are read back once per cell id.
+recorded at most once; results are read back once per cell id. A cell whose
+training raised becomes FAIL with its error and traceback as user attributes;
+it is not retried until the sweep is planned again (a rerun).
 
 Never imports torch.
 """
@@ -26,6 +28,7 @@ from pathlib import Path
 from typing import Any
 
 from ..errors import StoreError
+from ..urls import redact, scrub, split_url
 from ..records import CellSpec, RunResult
 
 log = logging.getLogger(__name__)
@@ -37,14 +40,15 @@ HEARTBEAT_S = int(os.environ.get("DEPTHPLAN_HEARTBEAT_S", "5"))
 GRACE_S = int(os.environ.get("DEPTHPLAN_GRACE_S", "20"))
 
 
-def redact(url: str) -> str:
-    """The URL with any password replaced, for messages and logs."""
-    if "://" not in url or "@" not in url:
-        return url
-    scheme, rest = url.split("://", 1)
-    auth, host = rest.rsplit("@", 1)
-    user = auth.split(":", 1)[0]
-    return f"{scheme}://{user}:***@{host}"
+def store_error(what: str, url: str, exc: BaseException) -> StoreError:
+    """A StoreError for a driver/SQLAlchemy/Optuna failure: its first line, with no password in it."""
+    text = str(exc).strip()
+    first = text.splitlines()[0] if text else type(exc).__name__
+    parts = split_url(url)
+    hint = ""
+    if parts and parts[1].count("@") > 1 and ":" in parts[1].rsplit("@", 1)[0]:
+        hint = " (an '@' inside a password must be written %40)"
+    return StoreError(scrub(f"{what} at {redact(url)}: {first}{hint}", url))
 
 
 def tuning_storage(url: str) -> Any:
@@ -83,8 +87,7 @@ def _rdb(url: str, *, heartbeat: bool = True) -> Any:
                          "heartbeat_stale_trial_callback": optuna.storages.RetryHeartbeatStaleTrialCallback()}
             storage = optuna.storages.RDBStorage(url, engine_kwargs=kwargs, **beats)
         except Exception as exc:  # sqlalchemy/driver errors vary by backend
-            first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-            raise StoreError(f"cannot open the sweep store at {redact(url)}: {first}") from None
+            raise store_error("cannot open the sweep store", url, exc) from None
     if url.startswith("sqlite"):
         from sqlalchemy import event
 
@@ -112,16 +115,21 @@ class SweepStore:
         optuna = _quiet_optuna()
         self.url, self.name = url, study_name
         self.storage = _rdb(url)
-        if create:
-            self.study = optuna.create_study(study_name=study_name, storage=self.storage,
-                                             load_if_exists=True, direction="minimize")
-        else:
-            try:
-                self.study = optuna.load_study(study_name=study_name, storage=self.storage)
-            except KeyError:
-                names = [s.study_name for s in optuna.get_all_study_summaries(self.storage)]
-                hint = f" (studies there: {', '.join(names)})" if names else ""
-                raise StoreError(f"no sweep named '{study_name}' in {redact(url)}{hint}") from None
+        from sqlalchemy.exc import SQLAlchemyError
+
+        try:
+            if create:
+                self.study = optuna.create_study(study_name=study_name, storage=self.storage,
+                                                 load_if_exists=True, direction="minimize")
+            else:
+                try:
+                    self.study = optuna.load_study(study_name=study_name, storage=self.storage)
+                except KeyError:
+                    names = [s.study_name for s in optuna.get_all_study_summaries(self.storage)]
+                    hint = f" (studies there: {', '.join(names)})" if names else ""
+                    raise StoreError(f"no sweep named '{study_name}' in {redact(url)}{hint}") from None
+        except SQLAlchemyError as exc:
+            raise store_error(f"cannot open sweep '{study_name}'", url, exc) from None
         self._id = self.study._study_id
 
     # ---------------------------------------------------------------- sweep metadata
@@ -135,12 +143,18 @@ class SweepStore:
     def _trials(self, states: tuple | None = None) -> list[Any]:
         return self.storage.get_all_trials(self._id, deepcopy=False, states=states)
 
-    def plan(self, cells: list[CellSpec]) -> int:
-        """Enqueue every cell that is neither done, waiting nor running; return how many."""
+    def plan(self, cells: list[CellSpec], *, retry_failed: bool = True) -> int:
+        """Enqueue every cell that is neither done, waiting nor running; return how many.
+
+        A cell whose training raised (see `fail`) counts as not done, so it is enqueued
+        again, unless `retry_failed` is False (later rounds of the same sweep command).
+        """
         from optuna.trial import TrialState
 
         live = (TrialState.WAITING, TrialState.RUNNING, TrialState.COMPLETE)
         have = {t.user_attrs.get("cell_id") for t in self._trials(live)}
+        if not retry_failed:
+            have |= {spec.cell_id for spec, _ in self.failures()}
         added = 0
         for spec in cells:
             if spec.cell_id in have:
@@ -204,18 +218,31 @@ class SweepStore:
             log.warning("cell %s was failed by another worker meanwhile; its result is discarded", claim.spec.cell_id)
             return False
 
-    def release(self, claim: Claim, reason: str) -> None:
-        """Give a cell back after an error or interruption: fail this trial, enqueue the cell again."""
+    def _set_failed(self, claim: Claim, attrs: dict[str, str], *, user: bool) -> bool:
+        """Attach `attrs` to the claimed trial and make it FAIL; False if it was finished meanwhile."""
         from optuna.exceptions import UpdateFinishedTrialError
         from optuna.trial import TrialState
 
+        set_attr = self.storage.set_trial_user_attr if user else self.storage.set_trial_system_attr
         try:
-            self.storage.set_trial_system_attr(claim.trial_id, "depthplan_failure", reason[:2000])
-            failed = self.storage.set_trial_state_values(claim.trial_id, state=TrialState.FAIL)
+            for key, value in attrs.items():
+                set_attr(claim.trial_id, key, value)
+            return bool(self.storage.set_trial_state_values(claim.trial_id, state=TrialState.FAIL))
         except UpdateFinishedTrialError:
-            return
-        if failed:
+            return False
+
+    def release(self, claim: Claim, reason: str) -> None:
+        """Give a cell back after an interruption or a bad input: fail this trial, enqueue the cell again."""
+        if self._set_failed(claim, {"depthplan_failure": reason[:2000]}, user=False):
             self.plan([claim.spec])
+
+    def fail(self, claim: Claim, error: str, trace: str) -> bool:
+        """Store a cell whose training raised as failed, with its error and traceback as user attributes.
+
+        The cell is not enqueued again: the sweep carries on without it, and the next
+        `plan` of the sweep (a rerun) retries it. False if the trial was finished meanwhile.
+        """
+        return self._set_failed(claim, {"error": error[:2000], "traceback": trace[-8000:]}, user=True)
 
     # ---------------------------------------------------------------- reading
     def results(self) -> list[RunResult]:
@@ -231,6 +258,20 @@ class SweepStore:
             seen.add(cid)
             out.extend(RunResult.from_dict(d) for d in t.user_attrs["runs"])
         return out
+
+    def failures(self) -> list[tuple[CellSpec, str]]:
+        """(cell, error) of every cell not stored whose latest trial failed in training (see `fail`)."""
+        from optuna.trial import TrialState
+
+        latest: dict[str, Any] = {}
+        stored: set[str] = set()
+        for t in sorted(self._trials(), key=lambda t: t.number):
+            cid = t.user_attrs.get("cell_id")
+            latest[cid] = t
+            if t.state == TrialState.COMPLETE:
+                stored.add(cid)
+        return [(CellSpec.from_dict(t.user_attrs["cell"]), t.user_attrs["error"]) for cid, t in latest.items()
+                if cid not in stored and t.state == TrialState.FAIL and "error" in t.user_attrs]
 
     def holders(self) -> dict[str, str]:
         """Cell id -> "host:pid" of the worker holding it, for every running cell."""
