@@ -49,43 +49,56 @@ def growth_exponent(steps: Sequence[float], values: Sequence[float], *,
 
 def _snr_levels(steps: Sequence[float], snr_db: Sequence[float],
                 edge: float = 0.2) -> tuple[np.ndarray, np.ndarray, float, float]:
+    """Probe steps, SNR values and the early and late levels (medians of the first and last fifth).
+
+    A NaN SNR at a valid step is a probe below the floor of its window (`gradient_snr_db`; stored
+    files hold it as null): it stays in the series as -inf, below every measured value, so a level
+    whose median falls on such probes is -inf (known only to lie below the floor).
+    """
     t = np.asarray(steps, float)
     q = np.asarray(snr_db, float)
-    ok = np.isfinite(t) & np.isfinite(q) & (t > 0)
-    t, q = t[ok], q[ok]
+    ok = np.isfinite(t) & (t > 0)
+    t, q = t[ok], np.where(np.isnan(q[ok]), -np.inf, q[ok])
     if len(t) < 4:
         return t, q, math.nan, math.nan
     order = np.argsort(t)
     t, q = t[order], q[order]
     m = max(1, int(round(edge * len(t))))
-    return t, q, float(np.median(q[:m])), float(np.median(q[-m:]))
+    with np.errstate(invalid="ignore"):
+        return t, q, float(np.median(q[:m])), float(np.median(q[-m:]))
 
 
 def snr_drop_db(steps: Sequence[float], snr_db: Sequence[float]) -> float:
     """Fall of the gradient SNR (dB) from its early level to its late level.
 
     Levels are medians of the first and last fifth of the probes; NaN with
-    fewer than four usable probes.
+    fewer than four usable probes or when a level lies below the probe's floor
+    (the drop is then not a number the probe can give).
     """
     _, _, early, late = _snr_levels(steps, snr_db)
-    return early - late
+    return early - late if math.isfinite(early) and math.isfinite(late) else math.nan
 
 
 def transition_step(steps: Sequence[float], snr_db: Sequence[float], *,
                     min_drop_db: float = 3.0) -> float:
     """Step at which the SNR first falls below halfway between its early and late levels.
 
-    Interpolated on log-step axes. NaN when the SNR falls by less than
-    `min_drop_db` (no drift-to-diffusion transition to speak of).
+    Interpolated on log-step axes; where the first probe below halfway is
+    below the floor, that probe's step. NaN when the SNR falls by less than
+    `min_drop_db` (no drift-to-diffusion transition to speak of) or a level is
+    below the floor (no halfway point).
     """
     t, q, early, late = _snr_levels(steps, snr_db)
-    if not (early - late >= min_drop_db):
+    drop = snr_drop_db(steps, snr_db)
+    if not (drop >= min_drop_db):
         return math.nan
     mid = 0.5 * (early + late)
     below = np.flatnonzero(q < mid)
     i = int(below[0])
     if i == 0:
         return float(t[0])
+    if not math.isfinite(q[i]):
+        return float(t[i])
     lt0, lt1 = math.log(t[i - 1]), math.log(t[i])
     frac = (q[i - 1] - mid) / (q[i - 1] - q[i])
     return float(math.exp(lt0 + frac * (lt1 - lt0)))

@@ -147,15 +147,18 @@ def layer_medians(runs: Sequence[RunResult], key: str) -> tuple[np.ndarray, np.n
     n_layers = min(len(getattr(r, key)) for r in runs)
     longest = max(runs, key=lambda r: len(r.probe_steps))
     steps = np.asarray(longest.probe_steps, float)
-    values = np.full((len(runs), n_layers, len(steps)), np.nan)
+    values = np.full((len(runs), n_layers, len(steps)), np.nan)     # NaN: the run stopped before
     for i, r in enumerate(runs):
         for j in range(n_layers):
             row = np.asarray(getattr(r, key)[j], float)[:len(steps)]
-            values[i, j, :len(row)] = row
-    keep = np.isfinite(values[:, 0, :]).sum(0) * 2 >= len(runs)
+            # a probe the run reached but could not measure (an SNR below the window's floor)
+            # ranks below every measured value, so it pulls the median down instead of vanishing
+            values[i, j, :len(row)] = np.where(np.isnan(row), -np.inf, row)
+    reached = ~np.isnan(values[:, 0, :])
+    keep = reached.sum(0) * 2 >= len(runs)
     with np.errstate(all="ignore"):
         med = np.nanmedian(values[:, :, keep], axis=0) if keep.any() else np.zeros((n_layers, 0))
-    return steps[keep], med
+    return steps[keep], np.where(np.isneginf(med), np.nan, med)     # a median below the floor: a gap
 
 
 def _layer_lines(ax: Axes, steps: np.ndarray, values: np.ndarray) -> list[Artist]:

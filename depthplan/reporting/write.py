@@ -250,7 +250,9 @@ def _dynamics_figure(inp: ReportInputs) -> _Drawn | None:
             "(the depth probed nearest to the depth to plan for). Left: distance of each weight "
             "matrix from its initial value, with guide lines of slope 1 (drift) and 1/2 (diffusion, "
             "the square-root law of a random walk). Right: gradient signal-to-noise ratio in "
-            "decibels. " + dynamics_words(Words(inp.fit)),
+            "decibels, 10·log10((‖ḡ‖² − S/n)/S) over n minibatch gradients (ḡ their mean, S the "
+            "unbiased estimate of the noise's total variance); a gap is a step below the floor of "
+            "the window. " + dynamics_words(Words(inp.fit)),
             "Weight displacement and gradient SNR per layer against updates.")
 
 

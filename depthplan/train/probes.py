@@ -23,18 +23,31 @@ def displacement(w_t: np.ndarray, w_0: np.ndarray) -> np.ndarray:
 
 
 def gradient_snr_db(grads: np.ndarray) -> np.ndarray:
-    """SNR in dB of a window of minibatch gradients.
+    """Bias-corrected SNR in dB of a window of n minibatch gradients drawn at the same weights.
+
+    With gbar the window mean and S = sum_i ||g_i - gbar||^2 / (n - 1) (unbiased for the noise
+    power tr Sigma), ||gbar||^2 - S / n is unbiased for the signal power ||E g||^2, and the SNR is
+    (||gbar||^2 - S / n) / S. The plain ratio ||gbar||^2 / S keeps the noise tr(Sigma) / n left in
+    gbar and so cannot read much below 10 log10(1 / (n - 1)) dB, whatever the true SNR.
 
     Args:
-        grads: (window, n_seeds, ...) gradients of one layer, drawn at the same weights.
+        grads: (window, n_seeds, ...) gradients of one layer, window >= 2.
 
     Returns:
-        (n_seeds,) 10 log10(||mean g||^2 / mean ||g - mean g||^2).
+        (n_seeds,) SNR in dB; NaN where the corrected signal is not positive (the SNR is below
+        what this window can resolve) or the window is all zeros; +inf where the draws agree
+        exactly but are not zero (no noise).
     """
     g = np.asarray(grads, dtype=np.float64)
-    g = g.reshape(g.shape[0], g.shape[1], -1)
+    n = g.shape[0]
+    if n < 2:
+        raise ValueError(f"an SNR window needs at least 2 gradients, got {n}")
+    g = g.reshape(n, g.shape[1], -1)
     mean = g.mean(axis=0)
-    signal = (mean ** 2).sum(axis=1)
-    noise = ((g - mean) ** 2).sum(axis=2).mean(axis=0)
+    noise = ((g - mean) ** 2).sum(axis=2).sum(axis=0) / (n - 1)
+    signal = (mean ** 2).sum(axis=1) - noise / n
+    out = np.full(signal.shape, np.nan)
+    ok = signal > 0
     with np.errstate(divide="ignore"):
-        return 10.0 * np.log10(np.maximum(signal, 1e-300) / np.maximum(noise, 1e-300))
+        out[ok] = 10.0 * np.log10(signal[ok] / noise[ok])
+    return out

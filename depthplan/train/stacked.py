@@ -222,6 +222,9 @@ def _draw_gradients(stack: _Stack, x: torch.Tensor, target: torch.Tensor, act: s
 def _gradient_snr(stack: _Stack, x: torch.Tensor, onehot: torch.Tensor, rows: np.ndarray, act: str) -> list[np.ndarray]:
     """Per layer, every seed's gradient SNR in dB over its window of minibatches at the current weights.
 
+    The bias-corrected estimate of `gradient_snr_db`: NaN where the SNR is below what the window
+    can resolve.
+
     Args:
         rows: (n_seeds, n_draws, batch) row indices of each seed's window.
 
