@@ -52,7 +52,8 @@ from depthplan.train.datasets import Dataset, load_dataset  # noqa: E402
 from depthplan.train.models import layer_sizes  # noqa: E402
 from depthplan.records import CellSpec  # noqa: E402
 from depthplan.fitting.inputs import load_runs  # noqa: E402
-from depthplan.train.loop import train_cell, train_plain  # noqa: E402
+from depthplan.train.loop import train_cell  # noqa: E402
+from depthplan.train.reference import train_plain  # noqa: E402
 
 DEPTHS = (1, 4, 8)
 

@@ -20,7 +20,7 @@ from .errors import (
 )
 from .records import CellSpec, RunResult
 
-_LAZY = {"train_cell": "train.loop", "train_plain": "train.loop", "run_sweep": "sweep.run",
+_LAZY = {"train_cell": "train.loop", "train_plain": "train.reference", "run_sweep": "sweep.run",
          "plan_cells": "sweep.run", "load_dataset": "train.datasets", "fit_runs": "fitting",
          "fit_path": "fitting", "load_runs": "fitting", "write_report": "reporting"}
 

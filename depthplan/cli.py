@@ -12,7 +12,7 @@ from pathlib import Path
 from typing import Callable, Sequence
 
 from . import __version__
-from .errors import ConfigError, DepthplanError
+from .errors import ConfigError, DepthplanError, RunFailed
 
 log = logging.getLogger("depthplan")
 
@@ -48,13 +48,12 @@ def _print_depth_table(results: list) -> None:
     """Runs per depth and their median T, one block per learning-rate curve (the rules of fit.json)."""
     import statistics
 
-    from .fitting.assemble import summarize_depths
+    from .fitting.depthlaw import summarize_depths
+    from .records import group_runs
 
-    curves: dict[tuple[str, float], list] = {}
-    for r in results:
-        curves.setdefault((r.lr_mode, r.learning_rate if r.lr_mode == "fixed" else 0.0), []).append(r)
+    curves = group_runs(results)
     print(f"{'lr':>8} {'mode':>6} {'depth':>5} {'runs':>4} {'conv':>4} {'cens':>4} {'div':>4} {'median T':>10}")
-    for (mode, _), runs in sorted(curves.items()):
+    for (mode, _), runs in curves.items():
         for row in summarize_depths(runs):
             lr = statistics.median(r.learning_rate for r in runs if r.depth == row["depth"])
             med = f"{row['median']:>10.0f}" if row["median"] is not None else f"{'> budget':>10}"
@@ -65,7 +64,8 @@ def _print_depth_table(results: list) -> None:
 def _train_sweep(config: Path, args: argparse.Namespace) -> Path:
     from .config import load_config
     from .sweep.run import run_sweep
-    from .sweep.storage import STORAGE_ENV, redact
+    from .sweep.storage import STORAGE_ENV
+    from .urls import redact
 
     cfg = load_config(config)
     summary = run_sweep(cfg, out=args.out, workers=args.workers, storage=args.storage,
@@ -75,7 +75,7 @@ def _train_sweep(config: Path, args: argparse.Namespace) -> Path:
               f"`depthplan worker --study {cfg.name}` (storage from --storage or ${STORAGE_ENV}), "
               f"then run this command again without --plan-only to collect the results")
         return summary.folder
-    from .fitting.assemble import load_runs
+    from .fitting.inputs import load_runs
 
     results = load_runs(summary.folder)
     print(f"{cfg.name}: {summary.n_runs} seed runs stored in {summary.folder} "
@@ -87,7 +87,19 @@ def _train_sweep(config: Path, args: argparse.Namespace) -> Path:
     for note in summary.notes:
         print(f"  note: {note}")
     _print_depth_table(results)
+    _fail_on_failed_cells(summary.failed, f"{summary.n_cells} cells", "run the same command again to retry them")
     return summary.folder
+
+
+def _fail_on_failed_cells(failed: list, of: str, retry: str) -> None:
+    """List the cells whose training raised, then fail the command (exit status 1) if there are any."""
+    if not failed:
+        return
+    print(f"  {len(failed)} of {of} failed:")
+    for cell in failed:
+        print(f"    {cell}")
+    raise RunFailed(f"{len(failed)} of {of} failed (listed above, tracebacks in the log and the store); "
+                    f"fix the cause and {retry}")
 
 
 def summary_url(cfg: object, args: argparse.Namespace) -> str:
@@ -103,7 +115,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
 
 
 def _cmd_fit(args: argparse.Namespace) -> int:
-    from .fitting.assemble import fit_path, format_summary
+    from .fitting import fit_path, format_summary
 
     fit, written = fit_path(Path(args.path), Path(args.json) if args.json else None,
                             save_fraction=args.save_fraction, n_boot=args.bootstrap)
@@ -137,7 +149,7 @@ def _cmd_worker(args: argparse.Namespace) -> int:
     import torch
 
     from .config import config_from_dict
-    from .sweep.run import work
+    from .sweep.run import failed_cells, work
     from .sweep.storage import STORAGE_ENV, SweepStore
 
     url = args.storage or os.environ.get(STORAGE_ENV)
@@ -148,20 +160,31 @@ def _cmd_worker(args: argparse.Namespace) -> int:
     cfg = config_from_dict(store.meta()["config"])
     n = work(store, cfg, linger_s=args.linger)
     print(f"worker: {n} cells trained and stored in sweep '{args.study}'")
+    _fail_on_failed_cells(failed_cells(store), f"the cells of sweep '{args.study}'",
+                          "run `depthplan run` on the sweep again (with --plan-only for workers) to retry them")
     return 0
+
+
+_LOG_FLAGS = ((("-v", "--verbose"), "log what each step does"),
+              (("-q", "--quiet"), "no progress bar, warnings only"),
+              (("--debug",), "show the full traceback of an error"))
+
+
+def _add_log_flags(parser: argparse.ArgumentParser, *, suppress: bool) -> None:
+    """-v / -q / --debug, accepted before or after the subcommand (suppressed there, so a flag
+    given before it is not reset by the subcommand's default)."""
+    for names, help_ in _LOG_FLAGS:
+        extra = {"default": argparse.SUPPRESS} if suppress else {}
+        parser.add_argument(*names, action="store_true", help=help_, **extra)
 
 
 def build_parser() -> argparse.ArgumentParser:
     common = argparse.ArgumentParser(add_help=False)
-    common.add_argument("-v", "--verbose", action="store_true", default=argparse.SUPPRESS, help="log what each step does")
-    common.add_argument("-q", "--quiet", action="store_true", default=argparse.SUPPRESS, help="no progress bar, warnings only")
-    common.add_argument("--debug", action="store_true", default=argparse.SUPPRESS, help="show the full traceback of an error")
+    _add_log_flags(common, suppress=True)
     p = _Parser(prog="depthplan", description="Measure how depth changes updates-to-convergence on small "
                 "CPU networks, fit the depth scaling law, and plan the depth of a big training run.")
     p.add_argument("--version", action="version", version=f"depthplan {__version__}")
-    p.add_argument("-v", "--verbose", action="store_true", help="log what each step does")
-    p.add_argument("-q", "--quiet", action="store_true", help="no progress bar, warnings only")
-    p.add_argument("--debug", action="store_true", help="show the full traceback of an error")
+    _add_log_flags(p, suppress=False)
     sub = p.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
 
     def add(name: str, fn: Callable[[argparse.Namespace], int], help_: str) -> argparse.ArgumentParser:
@@ -202,6 +225,21 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
+def _without_secrets(message: str, argv: Sequence[str] | None) -> str:
+    """An error message with the passwords of the storage URLs given (--storage, $DEPTHPLAN_STORAGE) scrubbed."""
+    import itertools
+    import os
+
+    from .sweep.storage import STORAGE_ENV
+    from .urls import scrub
+
+    args = list(sys.argv[1:] if argv is None else argv)
+    urls = [os.environ.get(STORAGE_ENV)]
+    urls += [a.split("=", 1)[1] for a in args if a.startswith("--storage=")]
+    urls += [b for a, b in itertools.pairwise(args) if a == "--storage"]
+    return scrub(message, *urls)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; return the exit status."""
     parser = build_parser()
@@ -217,7 +255,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     except DepthplanError as exc:
         if debug:
             raise
-        print(f"depthplan: {exc}", file=sys.stderr)
+        print(f"depthplan: {_without_secrets(str(exc), argv)}", file=sys.stderr)
         return exc.exit_code
     except KeyboardInterrupt:
         if debug:

@@ -35,5 +35,11 @@ class RunFailed(DepthplanError):
     exit_code = 1
 
 
+def first_line(text: str) -> str:
+    """The first line of `text` without surrounding blanks ("" for blank text), for one-line messages."""
+    lines = text.strip().splitlines()
+    return lines[0].strip() if lines else ""
+
+
 class ConvergenceWarning(UserWarning):
     """A numerical procedure returned an answer it is not sure of."""

@@ -10,12 +10,86 @@ import io
 import json
 import math
 from dataclasses import asdict, dataclass, field, fields
+from enum import Enum
 from pathlib import Path
-from typing import Any
+from typing import Any, Mapping, Protocol, Sequence
 
-#: How a seed run ended. `censored` means the budget ran out first: the run's
-#: updates-to-convergence is a lower bound (T >= iterations), not a value.
-STATUSES = ("converged", "censored", "diverged")
+
+class _Value(str, Enum):
+    """A str enum that prints, formats and serialises as its value (as StrEnum does on 3.11+)."""
+
+    def __str__(self) -> str:
+        return str(self.value)
+
+    def __format__(self, spec: str) -> str:
+        return format(str(self.value), spec)
+
+
+class RunStatus(_Value):
+    """How a seed run ended. `censored` means the budget ran out first: the run's
+    updates-to-convergence is a lower bound (T >= iterations), not a value."""
+
+    CONVERGED = "converged"
+    CENSORED = "censored"
+    DIVERGED = "diverged"
+
+
+class RateMode(_Value):
+    """How a run's learning rate was chosen: given, tuned per depth, or a tuning trial."""
+
+    FIXED = "fixed"
+    TUNED = "tuned"
+    TUNING = "tuning"
+
+
+class ReversalStatus(_Value):
+    """Whether T turns up with depth: seen within the swept depths, suspected past them, or not at all."""
+
+    OBSERVED = "observed"
+    BEYOND_RANGE = "beyond_range"
+    NONE = "none"
+
+
+#: The values of RunStatus, in order (the strings stored in runs.csv and fit.json).
+STATUSES = tuple(s.value for s in RunStatus)
+
+
+class _Rated(Protocol):
+    lr_mode: str
+    learning_rate: float
+
+
+RateGroup = tuple[str, "float | None"]
+
+
+def rate_group(run: _Rated) -> RateGroup:
+    """The learning-rate curve a run (or planned cell) belongs to: ("tuned", None) or ("fixed", rate).
+
+    The one rule every module uses: rates equal to 12 significant digits are the same curve
+    (so a rate read back from CSV text matches the float it was written from).
+    """
+    if run.lr_mode == RateMode.TUNED:
+        return (RateMode.TUNED.value, None)
+    lr = run.learning_rate
+    ok = isinstance(lr, (int, float)) and not isinstance(lr, bool) and math.isfinite(lr)
+    return (RateMode.FIXED.value, float(f"{float(lr):.12g}") if ok else None)
+
+
+def group_runs(runs: Sequence[Any]) -> dict[RateGroup, list[Any]]:
+    """Runs by learning-rate curve (tuning trials left out), fixed rates in rising order, then tuned."""
+    groups: dict[RateGroup, list[Any]] = {}
+    for r in runs:
+        if r.lr_mode != RateMode.TUNING:
+            groups.setdefault(rate_group(r), []).append(r)
+    order = sorted(groups, key=lambda k: (k[0] == RateMode.TUNED.value, k[1] if k[1] is not None else -1.0))
+    return {k: groups[k] for k in order}
+
+
+def primary_group(groups: Mapping[RateGroup, Sequence[Any]]) -> RateGroup:
+    """The curve the headline describes: the fixed-rate curve with most runs, else the first listed."""
+    keys = list(groups)
+    fixed = [k for k in keys if k[0] == RateMode.FIXED.value]
+    return max(fixed, key=lambda k: len(groups[k])) if fixed else keys[0]
 
 #: Columns of `runs.csv`, in order. `iterations` is T for converged runs and
 #: the number of updates done (the budget) for censored ones.
@@ -93,13 +167,25 @@ def _jsonable(v: Any) -> Any:
     return v
 
 
-def write_text_atomic(path: Path, text: str) -> Path:
-    """Write `text` to `path` through a temporary file, so a reader never sees half a file."""
+def write_bytes_atomic(path: Path, data: bytes) -> Path:
+    """Write `data` to `path` through a temporary file, so a reader never sees half a file.
+
+    The one writer behind every file the tool writes (exports, fit.json, config.yaml, the report
+    and its figures).
+    """
     path = Path(path)
     tmp = path.with_suffix(path.suffix + ".tmp")
-    tmp.write_text(text, encoding="utf-8")
-    tmp.replace(path)
+    try:
+        tmp.write_bytes(data)
+        tmp.replace(path)
+    finally:
+        tmp.unlink(missing_ok=True)
     return path
+
+
+def write_text_atomic(path: Path, text: str) -> Path:
+    """`write_bytes_atomic` for UTF-8 text."""
+    return write_bytes_atomic(path, text.encode("utf-8"))
 
 
 def write_csv(path: Path, rows: list[dict[str, Any]], columns: tuple[str, ...]) -> Path:

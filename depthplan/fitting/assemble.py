@@ -1,13 +1,13 @@
 """Fit the depth scaling law to measured updates-to-convergence (numpy/scipy, no torch).
 
 `fit_runs` turns run records into the content of `fit.json`; `fit_path` loads a
-results folder or measurements table (see `depthplan.tables`), fits and writes
+results folder or measurements table (see `depthplan.fitting.inputs`), fits and writes
 the file; `power_law_curve` evaluates a fit's power law with its band. This
 module assembles fit.json: it groups the runs by learning rate, fits each group
 (`_fit_group`: which depths the law spans, which model the planning figures
 use, the two-term cross-check of a reversal) and compares the groups. The
-pieces it assembles live beside it, and every public name of theirs is
-re-exported here (`__all__`):
+pieces it assembles live beside it; the package `depthplan.fitting`
+re-exports every public name (`__all__`):
 
     estimators   fit_power_law (Tobit on log T; ordinary least squares when nothing
                  is censored), fit_segmented (broken stick, Muggeo 2003),
@@ -59,7 +59,7 @@ import numpy as np
 from scipy import stats
 
 from ..errors import DataError
-from ..records import STATUSES, RunResult
+from ..records import STATUSES, ReversalStatus, RunResult, group_runs, primary_group, write_text_atomic
 from .depthlaw import (
     _Arrays,
     _gain,
@@ -71,45 +71,20 @@ from .depthlaw import (
 )
 from .diffusion import (
     diffusion_summary,
-    growth_exponent,
-    snr_drop_db,
-    transition_step,
 )
 from .estimators import (
-    PowerLawFit,
-    SegmentedFit,
-    TwoTermFit,
     _tobit_batch,
-    bic,
-    fit_power_law,
-    fit_segmented,
     fit_two_term,
 )
 from .inputs import eval_interval, load_runs, read_sweep_info
 from .planning import (
     _curve_block,
     _planning_block,
-    compute_optimal_depth,
-    fit_cost_model,
-    last_depth_worth_adding,
-    log_t_curve,
 )
-from .summary import _describe, _group_warnings, _plural, format_summary
+from .summary import _describe, _group_warnings, _plural
 
-__all__ = [
-    "SCHEMA", "fit_runs", "fit_path", "default_json_path", "power_law_curve", "load_runs",
-    # estimators
-    "PowerLawFit", "SegmentedFit", "TwoTermFit", "fit_power_law", "fit_segmented",
-    "fit_two_term", "bic",
-    # depthlaw, planning, diffusion, summary
-    "summarize_depths", "log_t_curve", "last_depth_worth_adding", "compute_optimal_depth",
-    "fit_cost_model", "growth_exponent", "transition_step", "snr_drop_db",
-    "diffusion_summary", "format_summary",
-]
+__all__ = ["SCHEMA", "fit_runs", "fit_path", "default_json_path", "power_law_curve"]
 
-# What this module imports without using is re-exported: the public names through `__all__`,
-# ConvergenceWarning and the private helpers (which tests reach as `fitting._alpha` and the
-# like) by the import alone, so every name importable here before the split still is.
 
 SCHEMA = "depthplan-fit/1"
 
@@ -152,7 +127,8 @@ def _fit_group(runs: list[RunResult], *, save_fraction: float, n_boot: int, seed
     else:
         pl["without_shallowest"] = None
     gain = _gain(pl)
-    status = "none" if not gain else "observed" if rev["candidate"] else "beyond_range"
+    status = (ReversalStatus.NONE if not gain else ReversalStatus.OBSERVED if rev["candidate"]
+              else ReversalStatus.BEYOND_RANGE).value
     reversal = _reversal_fields(rev, status, d, depths, seg_draws)
     if status == "observed":
         model, point, draws = "segmented", np.array(rev["point"]), seg_draws
@@ -206,13 +182,6 @@ def _reversal_fields(rev: dict[str, Any], status: str, d: _Arrays, depths: list[
 
 
 # ---------------------------------------------------------------- all runs
-
-def _rate_key(r: RunResult) -> tuple[str, float | None]:
-    if r.lr_mode == "tuned":
-        return ("tuned", None)
-    lr = r.learning_rate
-    return ("fixed", float(lr) if isinstance(lr, (int, float)) and math.isfinite(lr) else None)
-
 
 def _group_label(key: tuple[str, float | None], runs: list[RunResult]) -> dict[str, Any]:
     return {"lr_mode": key[0], "learning_rate": key[1], "n_runs": len(runs)}
@@ -283,12 +252,9 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
         raise DataError(f"{source or 'input'}: no finished runs to fit")
     if eval_every is None:
         eval_every = eval_interval(known)
-    groups: dict[tuple[str, float | None], list[RunResult]] = {}
-    for r in known:
-        groups.setdefault(_rate_key(r), []).append(r)
-    keys = sorted(groups, key=lambda k: (k[0] == "tuned", k[1] if k[1] is not None else -1.0))
-    fixed = [k for k in keys if k[0] == "fixed"]
-    primary = max(fixed, key=lambda k: len(groups[k])) if fixed else keys[0]
+    groups = group_runs(known)
+    keys = list(groups)
+    primary = primary_group(groups)
     kw = dict(save_fraction=save_fraction, n_boot=n_boot, seed=seed, eval_every=eval_every)
     main = {"group": _group_label(primary, groups[primary]),
             **_fit_group(groups[primary], source=source, **kw)}
@@ -360,9 +326,7 @@ def fit_path(path: Path, json_out: Path | None = None, **kw: Any) -> tuple[dict[
     out = Path(json_out) if json_out is not None else default_json_path(path)
     if not out.parent.is_dir():
         raise DataError(f"{out}: the folder {out.parent} does not exist")
-    tmp = out.with_name(out.name + ".tmp")
-    tmp.write_text(json.dumps(fit, indent=2, allow_nan=False) + "\n", encoding="utf-8")
-    tmp.replace(out)
+    write_text_atomic(out, json.dumps(fit, indent=2, allow_nan=False) + "\n")
     return fit, out
 
 

@@ -25,10 +25,11 @@ import logging
 import math
 from dataclasses import fields
 from pathlib import Path
+from types import SimpleNamespace
 from typing import Any, Callable, Sequence
 
 from ..errors import DataError
-from ..records import RUN_COLUMNS, STATUSES, RunResult
+from ..records import RUN_COLUMNS, STATUSES, RateMode, RunResult, rate_group
 
 log = logging.getLogger(__name__)
 
@@ -322,12 +323,12 @@ def eval_interval(runs: list[RunResult], sweep_info: dict[str, Any] | None = Non
 
 
 def runs_of_group(group: dict[str, Any] | None, runs: Sequence[RunResult]) -> list[RunResult]:
-    """The runs a fit group describes (fitting groups by rate: each fixed rate, and all tuned runs)."""
-    runs = [r for r in runs if r.lr_mode != "tuning"]
+    """The runs a fit group describes (the curves of `records.rate_group`; tuning trials never)."""
+    runs = [r for r in runs if r.lr_mode != RateMode.TUNING]
     if not group:
         return list(runs)
-    if group.get("lr_mode") == "tuned":
-        return [r for r in runs if r.lr_mode == "tuned"]
-    lr = group.get("learning_rate")
-    return [r for r in runs if r.lr_mode != "tuned" and (
-        lr is None or (isinstance(r.learning_rate, (int, float)) and math.isclose(r.learning_rate, lr)))]
+    want = rate_group(SimpleNamespace(lr_mode=group.get("lr_mode") or RateMode.FIXED.value,
+                                      learning_rate=group.get("learning_rate")))
+    if want == (RateMode.FIXED.value, None):        # a fixed group whose rate was not recorded
+        return [r for r in runs if r.lr_mode != RateMode.TUNED]
+    return [r for r in runs if rate_group(r) == want]

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 from typing import Any, Sequence
 
+from ..fit_record import FitResult, Planning, Reversal
 from .depthlaw import _Arrays
 
 # ---------------------------------------------------------------- wording
@@ -94,68 +95,83 @@ def _ci_text(ci: Sequence[float] | None, fmt: str = ".2f") -> str:
     return "" if not ci or None in ci else f" (95 % interval {ci[0]:{fmt}} to {ci[1]:{fmt}})"
 
 
-def format_summary(fit: dict[str, Any]) -> str:
-    """The short plain-text summary `depthplan fit` prints."""
-    pl, rev, plan = fit["power_law"], fit["reversal"], fit["planning"]
-    depths = fit["depths_swept"]
-    lines = [f"Fitted {fit['n_runs']} runs at depths {depths[0]}-{depths[-1]}"
-             f" ({_describe(fit['group'])})"
-             + (f" from {fit['source']}" if fit.get("source") else "") + "."]
-    rec = plan["recommended_depth"]
-    if rec is not None:
-        lines.append(f"Recommended depth: {_plural(rec, 'layer')}"
-                     + (" [extrapolated]" if plan["recommended_extrapolated"] else "")
-                     + f" (from the {plan['recommended_basis']}).")
-    used = pl["depths_used"]
-    lines.append(f"Depth law T ~ K^s over depths {used[0]}-{used[-1]}: s = {pl['slope']:.2f} "
-                 f"+/- {pl['slope_se']:.2f}{_ci_text(pl['slope_ci'])}, R^2 = {pl['r2']:.2f}"
-                 + (f", {pl['n_censored']} censored (used as lower bounds)"
-                    if pl["n_censored"] else "") + ".")
-    without = pl.get("without_shallowest")
-    if without:
-        lines.append(f"Without the shallowest depth: s = {without['slope']:.2f}"
-                     f"{_ci_text(without['slope_ci'])}.")
-    if fit["depth_gain"]:
-        lines.append(f"Alpha = 1/(1 - s) = {pl['alpha']:.2f}{_ci_text(pl['alpha_ci'])}.")
-    else:
-        lines.append("Depth gives no gain here (s >= 0 or its interval includes 0); "
-                     "no alpha is reported.")
-    if rev["status"] == "observed":
-        lines.append(f"Reversal observed at K = {rev['depth']:.1f}{_ci_text(rev['depth_ci'], '.1f')}"
-                     f"; rising slope {rev['rising_slope']:.2f}"
-                     + (f"; smooth model minimum at K = {rev['smooth_depth']:.1f}"
-                        if rev["smooth_depth"] is not None else "") + ".")
-    else:
-        lines.append(f"Reversal: {rev['status'].replace('_', ' ')}: {rev['note']}.")
-    worth, opt = plan["last_depth_worth_adding"], plan["compute_optimal_depth"]
-    if worth["depth"] is not None:
-        lines.append(f"Last depth worth adding (next layer saves under "
-                     f"{100 * plan['save_fraction']:g} %): {worth['depth']}"
-                     f"{_ci_text(worth['ci'], '.0f')}"
-                     + (" [extrapolated]" if worth["extrapolated"] else "") + ".")
-    if opt["depth"] is not None:
-        lines.append(f"Compute-optimal depth (measured seconds per update): {opt['depth']}"
-                     f"{_ci_text(opt['ci'], '.0f')}"
-                     + (" [extrapolated]" if opt["extrapolated"] else "") + ".")
-    elif opt.get("note"):
-        lines.append(f"Compute-optimal depth: not given ({opt['note']}).")
-    diff = fit.get("diffusion")
-    if diff and diff.get("late_exponent_median") is not None:
-        alpha = (f"against alpha {diff['alpha']:.2f} from the depth law"
-                 if diff.get("alpha") is not None else "(no alpha from the depth law to compare)")
-        text = (f"Probes: late-phase displacement exponent {diff['late_exponent_median']:.2f} "
-                f"{alpha}")
-        if diff.get("snr_drop_db_median") is not None:
-            text += f"; gradient SNR falls {diff['snr_drop_db_median']:.0f} dB"
-        if diff.get("transition_step_median") is not None:
-            text += f" around step {diff['transition_step_median']:.0f}"
-        lines.append(text + ".")
-    if fit.get("lr_interaction"):
+def format_summary(fit: FitResult | dict[str, Any]) -> str:
+    """The short plain-text summary `depthplan fit` prints (from a FitResult or fit.json's dict)."""
+    r = fit if isinstance(fit, FitResult) else FitResult.from_dict(fit)
+    depths = r.depths_swept
+    lines = [f"Fitted {r.n_runs} runs at depths {depths[0]}-{depths[-1]}"
+             f" ({_describe(r.group.to_dict())})"
+             + (f" from {r.source}" if r.source else "") + "."]
+    plan = r.planning
+    if plan.recommended_depth is not None:
+        lines.append(f"Recommended depth: {_plural(plan.recommended_depth, 'layer')}"
+                     + (" [extrapolated]" if plan.recommended_extrapolated else "")
+                     + f" (from the {plan.recommended_basis}).")
+    lines += _law_lines(r) + [_reversal_line(r.reversal)] + _planning_lines(plan)
+    probes = _probe_line(r)
+    if probes:
+        lines.append(probes)
+    if r.lr_interaction:
         lines.append(f"Several learning-rate groups: the figures above are for the "
-                     f"{_describe(fit['group'])}; each group is fitted in by_learning_rate.")
-    if fit["warnings"]:
+                     f"{_describe(r.group.to_dict())}; each group is fitted in by_learning_rate.")
+    if r.warnings:
         lines.append("Warnings:")
-        lines.extend(f"  - {w}" for w in fit["warnings"])
+        lines.extend(f"  - {w}" for w in r.warnings)
     lines.append("These figures come from small proxy networks; the depth law of the big run "
                  "may differ, so check a depth or two at full scale before committing.")
     return "\n".join(lines)
+
+
+def _law_lines(r: FitResult) -> list[str]:
+    pl = r.power_law
+    used = pl.depths_used
+    lines = [f"Depth law T ~ K^s over depths {used[0]}-{used[-1]}: s = {pl.slope:.2f} "
+             f"+/- {pl.slope_se:.2f}{_ci_text(pl.slope_ci)}, R^2 = {pl.r2:.2f}"
+             + (f", {pl.n_censored} censored (used as lower bounds)" if pl.n_censored else "") + "."]
+    if pl.without_shallowest:
+        lines.append(f"Without the shallowest depth: s = {pl.without_shallowest.slope:.2f}"
+                     f"{_ci_text(pl.without_shallowest.slope_ci)}.")
+    if r.depth_gain:
+        lines.append(f"Alpha = 1/(1 - s) = {pl.alpha:.2f}{_ci_text(pl.alpha_ci)}.")
+    else:
+        lines.append("Depth gives no gain here (s >= 0 or its interval includes 0); "
+                     "no alpha is reported.")
+    return lines
+
+
+def _reversal_line(rev: Reversal) -> str:
+    if not rev.observed:
+        return f"Reversal: {rev.status.replace('_', ' ')}: {rev.note}."
+    return (f"Reversal observed at K = {rev.depth:.1f}{_ci_text(rev.depth_ci, '.1f')}"
+            f"; rising slope {rev.rising_slope:.2f}"
+            + (f"; smooth model minimum at K = {rev.smooth_depth:.1f}"
+               if rev.smooth_depth is not None else "") + ".")
+
+
+def _planning_lines(plan: Planning) -> list[str]:
+    lines = []
+    worth, opt = plan.last_depth_worth_adding, plan.compute_optimal_depth
+    if worth.depth is not None:
+        lines.append(f"Last depth worth adding (next layer saves under "
+                     f"{100 * plan.save_fraction:g} %): {worth.depth}{_ci_text(worth.ci, '.0f')}"
+                     + (" [extrapolated]" if worth.extrapolated else "") + ".")
+    if opt.depth is not None:
+        lines.append(f"Compute-optimal depth (measured seconds per update): {opt.depth}"
+                     f"{_ci_text(opt.ci, '.0f')}" + (" [extrapolated]" if opt.extrapolated else "") + ".")
+    elif opt.note:
+        lines.append(f"Compute-optimal depth: not given ({opt.note}).")
+    return lines
+
+
+def _probe_line(r: FitResult) -> str:
+    diff = r.diffusion
+    if not diff or diff.late_exponent_median is None:
+        return ""
+    alpha = (f"against alpha {diff.alpha:.2f} from the depth law"
+             if diff.alpha is not None else "(no alpha from the depth law to compare)")
+    text = f"Probes: late-phase displacement exponent {diff.late_exponent_median:.2f} {alpha}"
+    if diff.snr_drop_db_median is not None:
+        text += f"; gradient SNR falls {diff.snr_drop_db_median:.0f} dB"
+    if diff.transition_step_median is not None:
+        text += f" around step {diff.transition_step_median:.0f}"
+    return text + "."

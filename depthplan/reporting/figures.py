@@ -12,6 +12,7 @@ readable printed in greyscale.
 """
 from __future__ import annotations
 
+import io
 import math
 from pathlib import Path
 from typing import Any, Sequence
@@ -24,7 +25,7 @@ from matplotlib.figure import Figure
 from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter, NullLocator
 
 from ..fitting.inputs import runs_of_group
-from ..records import RunResult
+from ..records import RunResult, write_bytes_atomic
 
 # Okabe-Ito: black, orange, sky blue, bluish green, yellow, blue, vermillion, reddish purple
 OKABE_ITO = ("#000000", "#E69F00", "#56B4E9", "#009E73", "#F0E442", "#0072B2", "#D55E00", "#CC79A7")
@@ -60,12 +61,14 @@ def save_figure(fig: Figure, folder: Path, name: str) -> tuple[Path, Path]:
     """Write `fig` as `<folder>/<name>.png` and `.svg` and return both paths."""
     folder.mkdir(parents=True, exist_ok=True)
     png, svg = folder / f"{name}.png", folder / f"{name}.svg"
+    png_bytes, svg_bytes = io.BytesIO(), io.BytesIO()
     with rc_context(RC):
         # "tight": the whole of a legend placed outside the axes is kept
-        fig.savefig(png, dpi=RC["savefig.dpi"], bbox_inches="tight", pad_inches=0.06,
+        fig.savefig(png_bytes, format="png", dpi=RC["savefig.dpi"], bbox_inches="tight", pad_inches=0.06,
                     metadata={"Software": None})
-        fig.savefig(svg, bbox_inches="tight", pad_inches=0.06, metadata={"Date": None, "Creator": None})
-    return png, svg
+        fig.savefig(svg_bytes, format="svg", bbox_inches="tight", pad_inches=0.06,
+                    metadata={"Date": None, "Creator": None})
+    return write_bytes_atomic(png, png_bytes.getvalue()), write_bytes_atomic(svg, svg_bytes.getvalue())
 
 
 # ---------------------------------------------------------------- shared helpers

@@ -21,16 +21,19 @@ from pathlib import Path
 from typing import Any, Callable
 
 from ..config import SweepFile, config_from_dict, dump_config
-from ..errors import ConfigError, DepthplanError, RunFailed, StoreError
+from ..errors import ConfigError, DepthplanError, RunFailed, StoreError, first_line
 from ..records import (
     CellSpec,
     RunResult,
+    group_runs,
+    primary_group,
     write_csv,
     write_runs_csv,
     write_runs_jsonl,
     write_text_atomic,
 )
-from .storage import Heartbeat, SweepStore, redact, resolve_url, tuning_storage
+from ..urls import redact
+from .storage import Heartbeat, SweepStore, resolve_url, tuning_storage
 
 log = logging.getLogger(__name__)
 
@@ -139,7 +142,7 @@ def write_sidecars(cfg: SweepFile, folder: Path, store: SweepStore, state: dict[
     `sweep.json` also carries the schedule when one is given: the depths and seeds
     swept, tuned rates per depth, and each adaptive round with its reason.
     """
-    (folder / "config.yaml").write_text(dump_config(cfg))
+    write_text_atomic(folder / "config.yaml", dump_config(cfg))
     state = state or _initial_state(cfg)
     info = {"name": cfg.name, "fingerprint": cfg.fingerprint(), "storage": redact(store.url),
             "eval_every": cfg.train.eval_every, "max_updates": cfg.train.max_updates,
@@ -166,8 +169,11 @@ def work(store: SweepStore, cfg: SweepFile, *, progress: Callable[[int], None] |
          idle_wait_s: float = 2.0, linger_s: float = 0.0) -> int:
     """Claim and train cells until none is waiting or running; return how many this worker stored.
 
-    A cell held by a worker that died is failed once its heartbeat goes stale and
-    comes back as waiting, so this loop waits while others still run. With
+    A cell whose training raises is logged and stored as failed (see `SweepStore.fail`),
+    and the loop carries on with the other cells; a bad input (`ConfigError`) or an
+    interruption gives the cell back and stops the loop. A cell held by a worker
+    that died is failed once its heartbeat goes stale and comes back as waiting,
+    so this loop waits while others still run. With
     `linger_s`, an idle worker waits that long for newly planned cells (the next
     round of an adaptive sweep) before it stops.
     """
@@ -203,9 +209,14 @@ def work(store: SweepStore, cfg: SweepFile, *, progress: Callable[[int], None] |
         except KeyboardInterrupt:
             store.release(claim, "interrupted")
             raise
-        except Exception:
+        except ConfigError:
             store.release(claim, traceback.format_exc())
             raise
+        except Exception as exc:
+            error = f"{type(exc).__name__}: {exc}" if str(exc).strip() else type(exc).__name__
+            log.exception("cell %s failed: %s", spec.cell_id, first_line(error))   # with its traceback
+            store.fail(claim, error, traceback.format_exc())
+            continue
         if store.record(claim, results):
             done += 1
 
@@ -226,6 +237,27 @@ def _worker_process(cfg_dict: dict, url: str, name: str, queue: Any) -> None:
 # --------------------------------------------------------------------------- the whole sweep
 
 @dataclass(frozen=True)
+class FailedCell:
+    """A cell whose training raised: stored as failed, retried by the next run of the sweep."""
+
+    depth: int
+    learning_rate: float
+    lr_mode: str
+    error: str                                                # the error's first line
+
+    def __str__(self) -> str:
+        return f"depth {self.depth}, learning rate {self.learning_rate:g} ({self.lr_mode}): {self.error}"
+
+
+def failed_cells(store: SweepStore, cells: list[CellSpec] | None = None) -> list[FailedCell]:
+    """The failed cells of the store (of `cells` only, when given), by learning rate and depth."""
+    ids = None if cells is None else {c.cell_id for c in cells}
+    out = [FailedCell(spec.depth, spec.learning_rate, spec.lr_mode, first_line(error))
+           for spec, error in store.failures() if ids is None or spec.cell_id in ids]
+    return sorted(out, key=lambda f: (f.lr_mode, f.learning_rate, f.depth))
+
+
+@dataclass(frozen=True)
 class SweepSummary:
     folder: Path
     n_cells: int
@@ -236,13 +268,20 @@ class SweepSummary:
     rounds: list[dict] = field(default_factory=list)          # adaptive rounds and their reasons
     tuned_rates: dict[int, float] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)            # early-censoring saving, rates at the edge
+    failed: list[FailedCell] = field(default_factory=list)    # cells whose training raised
+
+    @property
+    def n_failed(self) -> int:
+        return len(self.failed)
 
 
 def _train_round(cfg: SweepFile, store: SweepStore, cells: list[CellSpec], workers: int,
-                 show_progress: bool, label: str) -> int:
-    store.plan(cells)
+                 show_progress: bool, label: str, retry_failed: bool) -> int:
+    store.plan(cells, retry_failed=retry_failed)
     store.reap_stale()
     stored = {r.cell_id for r in store.results()}
+    if not retry_failed:
+        stored |= {spec.cell_id for spec, _ in store.failures()}
     todo = [c for c in cells if c.cell_id not in stored]
     total = sum(len(c.seeds) for c in todo) * cfg.train.max_updates
     bar = _progress_bar(total, show_progress, f"{label}: {len(todo)} of {len(cells)} cells to train")
@@ -316,6 +355,7 @@ def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int = 1
     url = resolve_url(storage, cfg.output.storage, folder)
     t0 = time.perf_counter()
     n_trained = 0
+    first_round = True
     with FolderLock(folder / ".lock"):
         store = open_sweep(cfg, folder, url)
         write_sidecars(cfg, folder, store)
@@ -334,12 +374,14 @@ def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int = 1
                     store.plan(cells)
                     break
                 label = cfg.name if not state["rounds"] else f"{cfg.name} round {len(state['rounds']) + 1}"
-                n_trained += _train_round(cfg, store, cells, workers, show_progress, label)
+                # failed cells are retried by the first round of a command, not by its later rounds
+                n_trained += _train_round(cfg, store, cells, workers, show_progress, label, retry_failed=first_round)
+                first_round = False
                 if cfg.sweep.adaptive is None or (state["rounds"] and state["rounds"][-1]["stop"]):
                     break
                 results = store.results()
-                primary = [r for r in results if r.lr_mode == ("tuned" if cfg.train.tune else "fixed")
-                           and (cfg.train.tune or r.learning_rate == cfg.train.learning_rate[0])]
+                groups = group_runs(results)
+                primary = groups[primary_group(groups)] if groups else []
                 d = decide(primary, cfg.sweep.adaptive, round_no=len(state["rounds"]) + 1,
                            cpu_seconds=sum(r.wall_seconds for r in results))
                 log.warning("%s", d.reason)
@@ -363,9 +405,11 @@ def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int = 1
             rows = tuning_trials(tuning_storage(store.url), cfg.name, sorted(int(k) for k in state["seeds"]))
             write_csv(folder / "tuning.csv", rows, ("depth", "trial", "learning_rate", "objective", "statuses"))
     cells = plan_cells(cfg, state)
-    missing = len(cells) - len({r.cell_id for r in results} & {c.cell_id for c in cells})
+    failed = [] if plan_only else failed_cells(store, cells)
+    missing = len(cells) - len({r.cell_id for r in results} & {c.cell_id for c in cells}) - len(failed)
     if missing and not plan_only:
-        raise RunFailed(f"{missing} of {len(cells)} cells did not finish (see the log above); "
+        also = f" and {len(failed)} failed" if failed else ""
+        raise RunFailed(f"{missing} of {len(cells)} cells did not finish{also} (see the log above); "
                         "run the same command again to retry them")
     by_status: dict[str, int] = {}
     for r in results:
@@ -383,7 +427,7 @@ def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int = 1
             notes.append(f"the tuned rate sits at the edge of its range [{cfg.train.tune.low:g}, "
                          f"{cfg.train.tune.high:g}] at depths {edge}: widen the range and rerun in a new folder")
     return SweepSummary(folder, len(cells), n_trained, len(results), time.perf_counter() - t0, by_status,
-                        state["rounds"], tuned, notes)
+                        state["rounds"], tuned, notes, failed)
 
 
 def _run_processes(cfg: SweepFile, store: SweepStore, workers: int, bar: Any) -> int:

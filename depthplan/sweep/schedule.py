@@ -22,7 +22,7 @@ from dataclasses import dataclass, field
 from typing import Any, Callable
 
 from ..config import AdaptiveConfig, SweepFile, TuneConfig
-from ..records import CellSpec, RunResult
+from ..records import CellSpec, RunResult, rate_group
 
 log = logging.getLogger(__name__)
 
@@ -46,8 +46,7 @@ def early_budget(stored: list[RunResult], spec: CellSpec, multiple: float | None
     """
     if multiple is None:
         return None
-    same = [r for r in stored if r.lr_mode == spec.lr_mode
-            and (spec.lr_mode == "tuned" or r.learning_rate == spec.learning_rate)]
+    same = [r for r in stored if r.lr_mode == spec.lr_mode and rate_group(r) == rate_group(spec)]
     by_depth: dict[int, list[RunResult]] = {}
     for r in same:
         by_depth.setdefault(r.depth, []).append(r)

@@ -5,8 +5,8 @@ and every update is a handful of batched matrix products with a hand-written
 backward pass: no autograd graph and no per-seed Python loop, which is where a
 CPU spends most of its time on networks this small. Each seed keeps its own
 initial weights and its own minibatch order, so its trajectory equals what a
-plain per-seed `nn.Sequential` + `torch.optim` loop computes (`train_plain`,
-kept here for the tests and the benchmark). Seeds that finish leave the batch.
+plain per-seed `nn.Sequential` + `torch.optim` loop computes (`reference.train_plain`,
+for the tests and the benchmark). Seeds that finish leave the batch.
 The batched maths (forward, backward, optimiser, evaluation) is in `stacked.py`.
 
 What the speed comes from, measured on a 2-core CPU (benchmarks/trainer_speed.py):
@@ -35,8 +35,8 @@ from ..errors import ConfigError
 from ..records import CellSpec, RunResult
 from .convergence import Criterion, verdict
 from .datasets import Dataset
-from .models import build_mlp, count_params, init_weights
-from .probes import log_spaced_steps
+from .models import count_params, init_weights
+from .probes import displacement, log_spaced_steps
 from .stacked import _evaluate, _gradient_snr, _minibatches, _Optimizer, _Stack
 
 ProgressFn = Callable[[int], None]
@@ -155,7 +155,7 @@ def _train_cell(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: 
     step = 0
 
     def probe(step_now: int) -> None:
-        disp = [(w - w_init).flatten(1).norm(dim=1).double().numpy() for w, w_init in zip(stack.ws, w0)]
+        disp = [displacement(w.detach().numpy(), w_init.detach().numpy()) for w, w_init in zip(stack.ws, w0)]
         snr = [np.full(len(active), math.nan)] * len(w0)
         if probes.snr:
             rows = np.stack([probe_rngs[a].integers(0, n_rows, (probes.snr_window, streams[a].batch)) for a in active])
@@ -226,53 +226,3 @@ def _result(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: Prob
         displacement=tuple(tuple(p[1][i] for p in plog) for i in range(n_layers)) if probes.displacement and plog else (),
         snr_db=tuple(tuple(p[2][i] for p in plog) for i in range(n_layers)) if probes.snr and plog else (),
     )
-
-
-# --------------------------------------------------------------------------- the plain loop
-
-def train_plain(spec: CellSpec, model: ModelConfig, train: TrainConfig, data: Dataset, *,
-                n_updates: int | None = None, dtype: torch.dtype = torch.float32,
-                until_converged: bool = False) -> list[list[float]]:
-    """Reference: each seed alone, `nn.Sequential` + `torch.optim`, same init and batch order.
-
-    Runs `n_updates` (default `train.max_updates`) updates and returns each seed's
-    full-training-set loss after every `train.eval_every` updates. Used to check the
-    batched trainer and as the benchmark's baseline.
-
-    Args:
-        until_converged: stop a seed at the first evaluation where `train.converge_when`
-            holds or its loss is not finite, as `train_cell` does; its list ends there.
-    """
-    x = torch.from_numpy(data.x_train).to(dtype)
-    y = torch.from_numpy(data.y_train)
-    x_val = torch.from_numpy(data.x_val).to(dtype)
-    y_val = torch.from_numpy(data.y_val)
-    criterion = Criterion.from_config(train.converge_when)
-    n_updates = n_updates or train.max_updates
-    out = []
-    for seed in spec.seeds:
-        net = build_mlp(model, x.shape[1], spec.depth, data.n_classes, seed, dtype)
-        if train.optimizer == "adam":
-            opt: torch.optim.Optimizer = torch.optim.Adam(net.parameters(), lr=spec.learning_rate)
-        else:
-            opt = torch.optim.SGD(net.parameters(), lr=spec.learning_rate, momentum=train.momentum)
-        stream = BatchStream(seed, x.shape[0], train.batch_size)
-        losses = []
-        for step in range(1, n_updates + 1):
-            rows = torch.from_numpy(stream.take(1)[0])
-            opt.zero_grad(set_to_none=True)
-            F.cross_entropy(net(x[rows]), y[rows]).backward()
-            opt.step()
-            if step % train.eval_every == 0:
-                with torch.no_grad():
-                    logits = net(x)
-                    losses.append(float(F.cross_entropy(logits, y)))
-                    if until_converged:
-                        acc = float((logits.argmax(dim=1) == y).double().mean())
-                        val = math.nan
-                        if criterion.needs_validation and len(y_val):
-                            val = float((net(x_val).argmax(dim=1) == y_val).double().mean())
-                        if verdict(criterion, step, n_updates, losses[-1], acc, val) is not None:
-                            break
-        out.append(losses)
-    return out

@@ -32,7 +32,7 @@ from depthplan.reporting.figures import plot_scaling
 from depthplan.records import RunResult, write_runs_csv
 from depthplan.reporting.write import ensure_fit, write_report
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 FIXTURE = ROOT / "tests" / "data" / "report-folder"
 ARTEFACTS = ROOT / "tests" / "artefacts"
 CHROMIUM = Path("/usr/bin/chromium")

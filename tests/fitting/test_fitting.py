@@ -20,7 +20,7 @@ from depthplan.fitting import assemble, depthlaw
 from depthplan.errors import ConfigError, ConvergenceWarning, DataError
 from depthplan.records import RunResult
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 
 
 def run(depth: int, iterations: float, status: str = "converged", *, seed: int = 0,

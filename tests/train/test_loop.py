@@ -19,8 +19,8 @@ from depthplan.errors import ConfigError
 from depthplan.train.models import build_mlp
 from depthplan.records import CellSpec
 from depthplan.train.stacked import _draw_gradients, _Stack
-from depthplan.train.loop import (BatchStream, _eval_subset, stacked_weights, train_cell,
-                             train_plain)
+from depthplan.train.loop import BatchStream, _eval_subset, stacked_weights, train_cell
+from depthplan.train.reference import train_plain
 
 NO_PROBES = ProbeConfig(displacement=False, snr=False)
 NEVER = ConvergeConfig(train_loss_below=1e-12)
@@ -140,7 +140,8 @@ def test_results_depend_on_the_seed_alone(data) -> None:
     b = train_cell(CellSpec(2, (5, 7), 0.05), model, train, ProbeConfig(n_points=5, snr_window=4), data)
     c = train_cell(CellSpec(2, (7, 9, 5), 0.05), model, train, ProbeConfig(n_points=5, snr_window=4), data)
     for r, s in zip(a, b):
-        assert (r.train_loss, r.displacement, r.snr_db) == (s.train_loss, s.displacement, s.snr_db)
+        assert (r.train_loss, r.displacement) == (s.train_loss, s.displacement)
+        np.testing.assert_array_equal(r.snr_db, s.snr_db)      # NaN (below the window's floor) equals NaN
     np.testing.assert_allclose(a[0].train_loss, c[2].train_loss, rtol=1e-5)   # seed 5, other company
     np.testing.assert_allclose(a[1].displacement, c[0].displacement, rtol=1e-5)
 
@@ -160,7 +161,9 @@ def test_records_probes_and_progress(data) -> None:
         assert all(len(d) == len(r.probe_steps) for d in r.displacement + r.snr_db)
         assert r.probe_steps[0] == 1 and r.probe_steps[-1] == 100
         assert all(np.diff(d).min() > -1e-6 for d in r.displacement[:1])    # the first layer moves away
-        assert all(math.isfinite(v) for d in r.snr_db for v in d)
+        # a value is measured or NaN (below the floor of a 4-draw window), never infinite
+        assert not any(math.isinf(v) for d in r.snr_db for v in d)
+        assert any(math.isfinite(v) for d in r.snr_db for v in d)
         assert 0.0 <= r.validation_accuracy <= 1.0 and r.wall_seconds > 0
 
 
@@ -223,7 +226,7 @@ MEMORY_SCRIPT = """
 def test_memory_at_256_seeds_depth_8_and_2000_rows_stays_under_1_gb() -> None:
     # peak resident set of a fresh process (Linux getrusage, kilobytes), torch included, after
     # one cell with probes and full-set evaluation
-    root = Path(__file__).resolve().parent.parent
+    root = Path(__file__).resolve().parents[2]
     out = subprocess.run([sys.executable, "-c", textwrap.dedent(MEMORY_SCRIPT)], capture_output=True, text=True,
                          cwd=root, timeout=300, check=True, env={"PYTHONPATH": str(root), "PATH": ""})
     peak = json.loads(out.stdout.strip().splitlines()[-1])
