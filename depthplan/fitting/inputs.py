@@ -83,9 +83,22 @@ def _lr_mode(text: str) -> str:
     return value
 
 
-def _iterations(text: str) -> int | float:
+#: More SGD updates than any run could take (10^15: about 30 years at a million updates a second);
+#: a larger count is a unit or typing mistake, and its logarithm would dominate any fit.
+MAX_ITERATIONS = 10**15
+
+
+class _Refused(ValueError):
+    """A cell that parses as a number but is not one its column can hold (message says why)."""
+
+
+def _iterations(text: str) -> int:
     value = _positive_number(text)
-    return int(value) if value == int(value) else value
+    if value != int(value):
+        raise _Refused("must be a whole number of updates")
+    if value > MAX_ITERATIONS:
+        raise _Refused("is more updates than any run takes (over 10^15); check the unit")
+    return int(value)
 
 
 # column -> (parser, message on failure, value when the cell is empty or absent)
@@ -194,6 +207,8 @@ def _parse_row(name: str, line: int, columns: list[str], cells: list[str]) -> di
             continue
         try:
             row[col] = parse(raw)
+        except _Refused as exc:
+            raise _cell_error(name, line, col, str(exc), raw) from None
         except ValueError:
             raise _cell_error(name, line, col, message, raw) from None
     return row

@@ -174,3 +174,15 @@ def test_fit_path_refuses_a_table_with_two_depths(tmp_path):
     with pytest.raises(DataError, match=r"timings\.csv: runs at 2 depths \(1, 2\); a depth law "
                                         r"needs at least three"):
         fit_path(path, n_boot=60)
+
+
+@pytest.mark.parametrize("cell, words", [
+    ("1500.5", "must be a whole number of updates"),       # updates are counted, never fractional
+    ("1e308", "is more updates than any run takes"),         # would overflow exp() in the fit
+])
+def test_implausible_iterations_refused_in_one_line(tmp_path, cell, words):
+    # Common practice: an update count is a whole number; 10^15 is far beyond any training run.
+    path = tmp_path / "t.csv"
+    path.write_text(f"depth,iterations\n1,1000\n2,{cell}\n3,400\n", encoding="utf-8")
+    with pytest.raises(DataError, match=rf"t\.csv line 3, column iterations: {words}.*got '{cell}'"):
+        load_runs(path)
