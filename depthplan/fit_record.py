@@ -18,7 +18,7 @@ from typing import Any, ClassVar, Mapping, TypeVar
 from .records import ReversalStatus
 
 __all__ = ["ABSENT", "Record", "FitResult", "FitGroup", "PowerLaw", "Reversal", "Planning",
-           "PlannedDepth", "Diffusion", "DiffusionLayer", "Curve", "DepthRow", "Bootstrap",
+           "PlannedDepth", "Diffusion", "DiffusionLayer", "DiffusionDepth", "Curve", "DepthRow", "Bootstrap",
            "GroupLabel", "FitInput", "LrInteraction"]
 
 
@@ -211,6 +211,31 @@ class DiffusionLayer(Record):
 
 
 @dataclass(frozen=True)
+class DiffusionDepth(Record):
+    depth: int = _absent()
+    n_runs: int = _absent()
+    spread: str = _absent()
+    snr_first_db: float | None = _absent()
+    snr_first_db_lo: float | None = _absent()
+    snr_first_db_hi: float | None = _absent()
+    snr_last_db: float | None = _absent()
+    snr_last_db_lo: float | None = _absent()
+    snr_last_db_hi: float | None = _absent()
+    snr_drop_db: float | None = _absent()
+    snr_drop_db_lo: float | None = _absent()
+    snr_drop_db_hi: float | None = _absent()
+    transition_step: float | None = _absent()
+    transition_step_lo: float | None = _absent()
+    transition_step_hi: float | None = _absent()
+    early_exponent: float | None = _absent()
+    early_exponent_lo: float | None = _absent()
+    early_exponent_hi: float | None = _absent()
+    late_exponent: float | None = _absent()
+    late_exponent_lo: float | None = _absent()
+    late_exponent_hi: float | None = _absent()
+
+
+@dataclass(frozen=True)
 class Diffusion(Record):
     n_runs: int = _absent()
     layers: list[DiffusionLayer] = _absent()
@@ -218,6 +243,8 @@ class Diffusion(Record):
     early_exponent_median: float | None = _absent()
     transition_step_median: float | None = _absent()
     snr_drop_db_median: float | None = _absent()
+    by_depth: list[DiffusionDepth] = _absent()
+    no_drop_note: str = _absent()
     alpha: float | None = _absent()
 
 

@@ -304,4 +304,18 @@ def dynamics_words(w: Words) -> str:
              ("snr_drop_db_median", ".1f", "; the gradient SNR falls by a median {} dB"),
              ("transition_step_median", ".0f", ", around step {}"))
     return "".join(text.format(w.num(f"diffusion.{key}", fmt))
-                   for key, fmt, text in parts if d.get(key) is not None) + "."
+                   for key, fmt, text in parts if d.get(key) is not None) + "." + _depth_drop_words(w)
+
+
+def _depth_drop_words(w: Words) -> str:
+    """' Per depth, the drop is a dB at K = 1 and b dB at K = 24. <no-drop note>' (or '')."""
+    d = w.get("diffusion") or {}
+    rows = [(i, r) for i, r in enumerate(d.get("by_depth") or []) if r.get("snr_drop_db") is not None]
+    text = ""
+    if len(rows) >= 2:
+        (i, first), (j, last) = rows[0], rows[-1]
+        text = (f" Per depth, the median SNR drop is {w.num(f'diffusion.by_depth.{i}.snr_drop_db', '.1f')}"
+                f" dB at K = {first['depth']} and {w.num(f'diffusion.by_depth.{j}.snr_drop_db', '.1f')}"
+                f" dB at K = {last['depth']}.")
+    note = d.get("no_drop_note")
+    return text + (f" {note}" if note else "")

@@ -15,6 +15,7 @@ from matplotlib.cm import ScalarMappable
 from matplotlib.colors import ListedColormap, Normalize
 from matplotlib.figure import Figure
 
+from ..fitting.diffusion import NO_DROP_DB
 from ..fitting.planning import total_cost_curve
 from ..records import RunResult
 from .figures import (
@@ -229,6 +230,50 @@ def plot_snr(fit: dict[str, Any], runs: Sequence[RunResult], ax: Axes, *, depth:
     ax.set_ylabel("gradient SNR (dB)")
     ax.set_title(f"gradient signal-to-noise per layer, K = {depth}")
     ax.legend(loc="best")
+    return out
+
+
+def has_depth_dynamics(fit: dict[str, Any]) -> bool:
+    """Whether fit.json carries per-depth probe measures (`diffusion.by_depth`) at two depths or more."""
+    return len((fit.get("diffusion") or {}).get("by_depth") or []) >= 2
+
+
+def _depth_errorbars(fit: dict[str, Any], ax: Axes, key: str) -> list[Artist]:
+    """Median of `diffusion.by_depth[*][key]` against K, bars over its between-seed spread."""
+    rows = [r for r in (fit.get("diffusion") or {}).get("by_depth") or [] if r.get(key) is not None]
+    if not rows:
+        return []
+    k = np.array([r["depth"] for r in rows], float)
+    y = np.array([r[key] for r in rows], float)
+    lo = np.array([r[key] if r.get(f"{key}_lo") is None else r[f"{key}_lo"] for r in rows], float)
+    hi = np.array([r[key] if r.get(f"{key}_hi") is None else r[f"{key}_hi"] for r in rows], float)
+    kinds = {r.get("spread") for r in rows}
+    spread = {frozenset({"iqr"}): "quartiles", frozenset({"min_max"}): "min to max"}.get(
+        frozenset(kinds), "quartiles (min to max under 4 runs)")
+    bars = ax.errorbar(k, y, yerr=[np.maximum(y - lo, 0), np.maximum(hi - y, 0)], color=BLUE,
+                       marker="s", ms=5, lw=1.2, capsize=3,
+                       label=f"median per depth; bars: {spread} of the seed runs")
+    return [bars]
+
+
+def plot_snr_drop_by_depth(fit: dict[str, Any], ax: Axes) -> list[Artist]:
+    """Median fall of the gradient SNR (dB) per depth with its between-seed spread."""
+    out = _depth_errorbars(fit, ax, "snr_drop_db")
+    out.append(ax.axhline(NO_DROP_DB, color=VERMILLION, ls="--", lw=1.0,
+                          label=f"{NO_DROP_DB:g} dB: under it, no drop"))
+    out.append(ax.axhline(0.0, color=GREY, lw=0.8))
+    depth_panel(ax, fit["depths_swept"], "gradient SNR drop, early to late (dB)",
+                "SNR drop per depth", log=False)
+    return out
+
+
+def plot_late_exponent_by_depth(fit: dict[str, Any], ax: Axes) -> list[Artist]:
+    """Median late-phase growth exponent of the displacement per depth, with guides at 1 and 1/2."""
+    out = _depth_errorbars(fit, ax, "late_exponent")
+    out.append(ax.axhline(1.0, color="black", ls="--", lw=1.0, label="1: drift (D ∝ t)"))
+    out.append(ax.axhline(0.5, color="black", ls=":", lw=1.4, label="1/2: diffusion (D ∝ √t)"))
+    depth_panel(ax, fit["depths_swept"], "late growth exponent of ‖W_t − W_0‖",
+                "displacement exponent per depth", log=False)
     return out
 
 

@@ -256,6 +256,24 @@ def _dynamics_figure(inp: ReportInputs) -> _Drawn | None:
             "Weight displacement and gradient SNR per layer against updates.")
 
 
+def _depth_dynamics_figure(inp: ReportInputs) -> _Drawn | None:
+    if not TF.has_depth_dynamics(inp.fit):
+        return None
+    fig, axes = F.new_figure(8.6, 4.0, 2)
+    TF.plot_snr_drop_by_depth(inp.fit, axes[0])
+    TF.plot_late_exponent_by_depth(inp.fit, axes[1])
+    F.shared_legend(fig, axes)
+    return (fig, "dynamics-by-depth", "Training dynamics against depth",
+            "Per depth, the median over layers and seeds of the probe measures, with bars over the "
+            "spread between seed runs (each run's median over its layers; quartiles with four runs "
+            "or more, minimum to maximum with fewer). Left: how far the gradient signal-to-noise "
+            "ratio falls from its early level (first fifth of the probes) to its late level (last "
+            "fifth), in decibels. Right: the log-log growth exponent of the weight displacement "
+            "after the transition, against the guides 1 (drift) and 1/2 (diffusion). "
+            + (inp.fit.get("diffusion") or {}).get("no_drop_note", ""),
+            "SNR drop and late displacement exponent against the number of hidden layers.")
+
+
 def _tuning_figure(inp: ReportInputs) -> _Drawn | None:
     if not inp.tuning:
         return None
@@ -269,7 +287,7 @@ def _tuning_figure(inp: ReportInputs) -> _Drawn | None:
 
 
 _FIGURES = (_scaling_figure, _rates_figure, _cost_figure, _loss_figure, _dynamics_figure,
-            _tuning_figure)
+            _depth_dynamics_figure, _tuning_figure)
 
 
 def draw_figures(inp: ReportInputs, folder: Path) -> list[FigureFile]:
@@ -308,8 +326,8 @@ def build_blocks(inp: ReportInputs, figs: list[FigureFile]) -> list[Block]:
         blocks += tuning_blocks(inp)
     if "cost" in by_name:
         section("Cost per depth", "cost", "cost")
-    if "loss" in by_name or "dynamics" in by_name:
-        section("Training dynamics", "dynamics", "loss", "dynamics")
+    if "loss" in by_name or "dynamics" in by_name or "dynamics-by-depth" in by_name:
+        section("Training dynamics", "dynamics", "loss", "dynamics", "dynamics-by-depth")
     blocks.append(("h", 2, "Per depth", "per-depth"))
     blocks += depth_table_blocks(inp, w)
     if inp.rounds:

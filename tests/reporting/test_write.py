@@ -276,6 +276,22 @@ def test_stored_folder_report_answers_first_and_gives_provenance(folder_report):
     assert {"scaling", "cost", "loss", "dynamics"} <= names
 
 
+def test_stored_folder_report_shows_the_snr_drop_per_depth(folder_report):
+    _, paths = folder_report
+    by_depth = json.loads(paths["fit"].read_text())["diffusion"]["by_depth"]
+    figure = next(p for p in paths["figures"] if p.name == "dynamics-by-depth.png")
+    assert figure.read_bytes()[:8] == PNG_SIGNATURE
+    md = paths["md"].read_text(encoding="utf-8")
+    drops = [r for r in by_depth if r["snr_drop_db"] is not None]
+    # the sentence quotes fit.json's drops at the shallowest and deepest depths
+    assert (f"the median SNR drop is {drops[0]['snr_drop_db']:.1f} dB at K = {drops[0]['depth']} "
+            f"and {drops[-1]['snr_drop_db']:.1f} dB at K = {drops[-1]['depth']}") in md
+    # brute force over fit.json's rows: the first depth from which every drop is under 2 dB
+    flat = next(r["depth"] for i, r in enumerate(drops)
+                if all(q["snr_drop_db"] < 2.0 for q in drops[i:]))
+    assert f"From K = {flat} on, the gradient SNR does not drop (median drop under 2 dB)." in md
+
+
 def test_table_report_goes_beside_the_table_and_marks_extrapolation(table_report):
     table, paths = table_report
     assert paths["html"].parent == table.with_name("timings-report")
