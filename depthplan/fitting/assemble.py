@@ -214,6 +214,32 @@ def _lr_interaction(fits: list[dict[str, Any]], groups: dict[tuple[str, float | 
             "slopes": slopes, "lr_exponent": lr_exponent, "message": message}
 
 
+def _check_fit_options(save_fraction: float, n_boot: int) -> None:
+    """Raise `ConfigError` when save_fraction or n_boot is out of range."""
+    from ..errors import ConfigError
+    if not 0 < save_fraction < 1:
+        raise ConfigError(f"save_fraction: must be between 0 and 1; got {save_fraction}")
+    if n_boot < 20:
+        raise ConfigError(f"n_boot: must be an int >= 20; got {n_boot}")
+
+
+def _fit_by_rate(groups: dict[tuple[str, float | None], list[RunResult]], primary: tuple[str, float | None],
+                 main: dict[str, Any], source: str, kw: dict[str, Any]) -> list[dict[str, Any]]:
+    """A full fit per learning-rate group (the primary's is `main`); a group too thin to fit is skipped."""
+    by_rate = []
+    for key in groups:
+        label = _group_label(key, groups[key])
+        if key == primary:
+            by_rate.append(main)
+            continue
+        try:
+            by_rate.append({"group": label, **_fit_group(
+                groups[key], source=f"{source or 'input'} ({_describe(label)})", **kw)})
+        except DataError as exc:
+            by_rate.append({"group": label, "skipped": str(exc)})
+    return by_rate
+
+
 def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int = 400,
              seed: int = 0, eval_every: int | None = None, source: str = "") -> dict[str, Any]:
     """Fit the depth law, the reversal and the planning figures to measured runs.
@@ -241,11 +267,7 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
         DataError: fewer than three depths, no converged runs at two depths, or
             no runs at all. ConfigError: save_fraction or n_boot out of range.
     """
-    from ..errors import ConfigError
-    if not 0 < save_fraction < 1:
-        raise ConfigError(f"save_fraction: must be between 0 and 1; got {save_fraction}")
-    if n_boot < 20:
-        raise ConfigError(f"n_boot: must be an int >= 20; got {n_boot}")
+    _check_fit_options(save_fraction, n_boot)
     # trials of a learning-rate search measure the search, not the depth law
     known = [r for r in runs if r.status in STATUSES and r.lr_mode != "tuning"]
     if not known:
@@ -253,23 +275,13 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
     if eval_every is None:
         eval_every = eval_interval(known)
     groups = group_runs(known)
-    keys = list(groups)
     primary = primary_group(groups)
     kw = dict(save_fraction=save_fraction, n_boot=n_boot, seed=seed, eval_every=eval_every)
     main = {"group": _group_label(primary, groups[primary]),
             **_fit_group(groups[primary], source=source, **kw)}
     by_rate, interaction = [], None
     if len(groups) > 1:
-        for key in keys:
-            label = _group_label(key, groups[key])
-            if key == primary:
-                by_rate.append(main)
-                continue
-            try:
-                by_rate.append({"group": label, **_fit_group(
-                    groups[key], source=f"{source or 'input'} ({_describe(label)})", **kw)})
-            except DataError as exc:
-                by_rate.append({"group": label, "skipped": str(exc)})
+        by_rate = _fit_by_rate(groups, primary, main, source, kw)
         interaction = _lr_interaction(by_rate, groups, primary)
     notes = list(main["warnings"])
     if len(known) < len(runs):

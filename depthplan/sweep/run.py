@@ -325,6 +325,96 @@ def _tune_process(cfg_dict: dict, url: str, depth: int) -> float:
     return tune_depth(config_from_dict(cfg_dict), tuning_storage(url), depth)
 
 
+def _next_round(cfg: SweepFile, store: SweepStore, state: dict[str, Any]) -> bool:
+    """Fit what is stored, record the adaptive decision in `state`, and return whether to stop."""
+    from .schedule import decide
+
+    results = store.results()
+    groups = group_runs(results)
+    primary = groups[primary_group(groups)] if groups else []
+    d = decide(primary, cfg.sweep.adaptive, round_no=len(state["rounds"]) + 1,
+               cpu_seconds=sum(r.wall_seconds for r in results))
+    log.warning("%s", d.reason)
+    state["rounds"].append(d.to_dict())
+    if not d.stop:
+        for k in d.add_depths:
+            state["seeds"].setdefault(str(k), list(cfg.sweep.seeds))
+        for k, n in d.add_seeds.items():
+            have = state["seeds"][str(k)]
+            have += list(range(max(have) + 1, max(have) + 1 + n))
+    store.set_meta("schedule", state)
+    return d.stop
+
+
+def _run_rounds(cfg: SweepFile, store: SweepStore, state: dict[str, Any], workers: int,
+                show_progress: bool, plan_only: bool) -> int:
+    """Tune, plan and train round after round until the schedule stops; return the cells trained."""
+    n_trained = 0
+    first_round = True
+    while True:
+        if cfg.train.tune is not None:
+            _tune_rates(cfg, store, state, workers, show_progress)
+        cells = plan_cells(cfg, state)
+        if plan_only:
+            store.plan(cells)
+            return n_trained
+        label = cfg.name if not state["rounds"] else f"{cfg.name} round {len(state['rounds']) + 1}"
+        # failed cells are retried by the first round of a command, not by its later rounds
+        n_trained += _train_round(cfg, store, cells, workers, show_progress, label, retry_failed=first_round)
+        first_round = False
+        if cfg.sweep.adaptive is None or (state["rounds"] and state["rounds"][-1]["stop"]):
+            return n_trained
+        if _next_round(cfg, store, state):
+            return n_trained
+
+
+def _write_outputs(cfg: SweepFile, folder: Path, store: SweepStore, state: dict[str, Any]) -> list[RunResult]:
+    """Export the runs, rewrite the sidecars with the schedule, and write `tuning.csv` when tuned."""
+    from .schedule import tuning_trials
+
+    results = export_runs(store, folder)
+    write_sidecars(cfg, folder, store, state)
+    if cfg.train.tune is not None:
+        rows = tuning_trials(tuning_storage(store.url), cfg.name, sorted(int(k) for k in state["seeds"]))
+        write_csv(folder / "tuning.csv", rows, ("depth", "trial", "learning_rate", "objective", "statuses"))
+    return results
+
+
+def _check_finished(cells: list[CellSpec], results: list[RunResult], failed: list[FailedCell]) -> None:
+    """Raise `RunFailed` when some planned cells are neither stored nor failed."""
+    missing = len(cells) - len({r.cell_id for r in results} & {c.cell_id for c in cells}) - len(failed)
+    if missing:
+        also = f" and {len(failed)} failed" if failed else ""
+        raise RunFailed(f"{missing} of {len(cells)} cells did not finish{also} (see the log above); "
+                        "run the same command again to retry them")
+
+
+def _status_counts(results: list[RunResult]) -> dict[str, int]:
+    """How many runs ended with each status."""
+    by_status: dict[str, int] = {}
+    for r in results:
+        by_status[r.status] = by_status.get(r.status, 0) + 1
+    return by_status
+
+
+def _summary_notes(cfg: SweepFile, results: list[RunResult], tuned: dict[int, float]) -> list[str]:
+    """The summary's notes: what early censoring saved, and tuned rates at the edge of their range."""
+    from .schedule import early_censor_saving, rate_at_edge
+
+    notes = []
+    n_early, saved = early_censor_saving(results, cfg.train.max_updates)
+    if cfg.sweep.early_censor is not None:
+        budget = len(results) * cfg.train.max_updates
+        notes.append(f"early censoring stopped {n_early} runs at {cfg.sweep.early_censor:g}x the best median T "
+                     f"so far, saving {saved} of at most {budget} seed-updates ({100 * saved / max(1, budget):.0f} %)")
+    if cfg.train.tune is not None:
+        edge = sorted(k for k, lr in tuned.items() if rate_at_edge(lr, cfg.train.tune))
+        if edge:
+            notes.append(f"the tuned rate sits at the edge of its range [{cfg.train.tune.low:g}, "
+                         f"{cfg.train.tune.high:g}] at depths {edge}: widen the range and rerun in a new folder")
+    return notes
+
+
 def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int = 1,
               storage: str | None = None, show_progress: bool = True, plan_only: bool = False) -> SweepSummary:
     """Train every cell of the sweep that is not stored yet, and export the runs.
@@ -346,16 +436,12 @@ def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int = 1
         StoreError: the folder holds a different sweep, or is in use.
         Interrupted: Ctrl-C; finished cells stay stored and a rerun does the rest.
     """
-    from .schedule import decide, early_censor_saving, rate_at_edge, tuning_trials
-
     if workers < 1:
         raise ConfigError(f"--workers: must be a positive integer, got {workers}")
     folder = output_folder(cfg, out)
     folder.mkdir(parents=True, exist_ok=True)
     url = resolve_url(storage, cfg.output.storage, folder)
     t0 = time.perf_counter()
-    n_trained = 0
-    first_round = True
     with FolderLock(folder / ".lock"):
         store = open_sweep(cfg, folder, url)
         write_sidecars(cfg, folder, store)
@@ -366,68 +452,19 @@ def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int = 1
 
             torch.set_num_threads(1)   # a second thread never helped these small products, and hurts under load
         try:
-            while True:
-                if cfg.train.tune is not None:
-                    _tune_rates(cfg, store, state, workers, show_progress)
-                cells = plan_cells(cfg, state)
-                if plan_only:
-                    store.plan(cells)
-                    break
-                label = cfg.name if not state["rounds"] else f"{cfg.name} round {len(state['rounds']) + 1}"
-                # failed cells are retried by the first round of a command, not by its later rounds
-                n_trained += _train_round(cfg, store, cells, workers, show_progress, label, retry_failed=first_round)
-                first_round = False
-                if cfg.sweep.adaptive is None or (state["rounds"] and state["rounds"][-1]["stop"]):
-                    break
-                results = store.results()
-                groups = group_runs(results)
-                primary = groups[primary_group(groups)] if groups else []
-                d = decide(primary, cfg.sweep.adaptive, round_no=len(state["rounds"]) + 1,
-                           cpu_seconds=sum(r.wall_seconds for r in results))
-                log.warning("%s", d.reason)
-                state["rounds"].append(d.to_dict())
-                if not d.stop:
-                    for k in d.add_depths:
-                        state["seeds"].setdefault(str(k), list(cfg.sweep.seeds))
-                    for k, n in d.add_seeds.items():
-                        have = state["seeds"][str(k)]
-                        have += list(range(max(have) + 1, max(have) + 1 + n))
-                store.set_meta("schedule", state)
-                if d.stop:
-                    break
+            n_trained = _run_rounds(cfg, store, state, workers, show_progress, plan_only)
         except KeyboardInterrupt:
             results = export_runs(store, folder)
             raise Interrupted(f"interrupted: {len({r.cell_id for r in results})} cells are stored "
                               f"in {folder}; run the same command again to finish the rest") from None
-        results = export_runs(store, folder)
-        write_sidecars(cfg, folder, store, state)
-        if cfg.train.tune is not None:
-            rows = tuning_trials(tuning_storage(store.url), cfg.name, sorted(int(k) for k in state["seeds"]))
-            write_csv(folder / "tuning.csv", rows, ("depth", "trial", "learning_rate", "objective", "statuses"))
+        results = _write_outputs(cfg, folder, store, state)
     cells = plan_cells(cfg, state)
     failed = [] if plan_only else failed_cells(store, cells)
-    missing = len(cells) - len({r.cell_id for r in results} & {c.cell_id for c in cells}) - len(failed)
-    if missing and not plan_only:
-        also = f" and {len(failed)} failed" if failed else ""
-        raise RunFailed(f"{missing} of {len(cells)} cells did not finish{also} (see the log above); "
-                        "run the same command again to retry them")
-    by_status: dict[str, int] = {}
-    for r in results:
-        by_status[r.status] = by_status.get(r.status, 0) + 1
-    notes = []
-    n_early, saved = early_censor_saving(results, cfg.train.max_updates)
-    if cfg.sweep.early_censor is not None:
-        budget = len(results) * cfg.train.max_updates
-        notes.append(f"early censoring stopped {n_early} runs at {cfg.sweep.early_censor:g}x the best median T "
-                     f"so far, saving {saved} of at most {budget} seed-updates ({100 * saved / max(1, budget):.0f} %)")
+    if not plan_only:
+        _check_finished(cells, results, failed)
     tuned = {int(k): float(v) for k, v in state["tuned"].items()}
-    if cfg.train.tune is not None:
-        edge = sorted(k for k, lr in tuned.items() if rate_at_edge(lr, cfg.train.tune))
-        if edge:
-            notes.append(f"the tuned rate sits at the edge of its range [{cfg.train.tune.low:g}, "
-                         f"{cfg.train.tune.high:g}] at depths {edge}: widen the range and rerun in a new folder")
-    return SweepSummary(folder, len(cells), n_trained, len(results), time.perf_counter() - t0, by_status,
-                        state["rounds"], tuned, notes, failed)
+    return SweepSummary(folder, len(cells), n_trained, len(results), time.perf_counter() - t0,
+                        _status_counts(results), state["rounds"], tuned, _summary_notes(cfg, results, tuned), failed)
 
 
 def _run_processes(cfg: SweepFile, store: SweepStore, workers: int, bar: Any) -> int:

@@ -171,6 +171,52 @@ def _spread(runs: list[RunResult]) -> float:
     return q[2] - q[0]
 
 
+def _stop_before_depths(policy: AdaptiveConfig, status: str | None, round_no: int, cpu_seconds: float) -> str | None:
+    """Why to stop whatever the depths say (budget spent, last round, no gain from depth), or None."""
+    if policy.cpu_budget_s is not None and cpu_seconds >= policy.cpu_budget_s:
+        return f"compute budget spent ({cpu_seconds:.0f} of {policy.cpu_budget_s:.0f} CPU s)"
+    if round_no >= policy.max_rounds:
+        return f"reached the last round ({policy.max_rounds})"
+    if status == "none":
+        return "depth gives no gain over the swept range"
+    return None
+
+
+def _target_reached(swept: list[int], k_star: float, ci: list[float] | None, policy: AdaptiveConfig) -> str | None:
+    """Why to stop when the reversal interval is within the target with two depths past it, or None."""
+    past = [k for k in swept if k > k_star]
+    width = (ci[1] - ci[0]) if ci else math.inf
+    if width <= policy.target_width and len(past) >= 2:
+        return f"reversal depth interval {width:.1f} layers, within the target {policy.target_width:g}"
+    return None
+
+
+def _depths_near_minimum(swept: list[int], k_star: float, ci: list[float] | None) -> set[int]:
+    """Integer depths around the reversal depth and its interval ends, with at least two beyond it."""
+    lo, hi = math.floor(k_star), math.ceil(k_star)
+    add = {lo - 1, lo, hi, hi + 1}
+    if ci:
+        add |= {math.floor(ci[0]), math.ceil(ci[1])}
+    beyond = sorted(k for k in swept if k > k_star)
+    nxt = max(swept) if beyond else hi
+    while len([k for k in set(swept) | add if k > k_star]) < 2:
+        nxt += max(1, nxt // 4)
+        add.add(nxt)
+    return add
+
+
+def _extra_seeds(runs: list[RunResult], policy: AdaptiveConfig) -> dict[int, int]:
+    """`policy.extra_seeds` more seeds at the depth whose T spreads most (none when it is zero)."""
+    by_depth: dict[int, list[RunResult]] = {}
+    for r in runs:
+        by_depth.setdefault(r.depth, []).append(r)
+    seeds: dict[int, int] = {}
+    if policy.extra_seeds:
+        noisiest = max(by_depth, key=lambda k: _spread(by_depth[k]))
+        seeds[noisiest] = policy.extra_seeds
+    return seeds
+
+
 def decide(runs: list[RunResult], policy: AdaptiveConfig, *, round_no: int, cpu_seconds: float,
            n_boot: int = 200, seed: int = 0) -> Decision:
     """Fit the stored runs and choose the next round's depths and seeds, or stop.
@@ -196,42 +242,21 @@ def decide(runs: list[RunResult], policy: AdaptiveConfig, *, round_no: int, cpu_
     rev = fit.get("reversal") or {}
     status, k_star, ci = rev.get("status"), rev.get("depth"), rev.get("depth_ci")
     summary = {"status": status, "depth": k_star, "depth_ci": ci}
-    if policy.cpu_budget_s is not None and cpu_seconds >= policy.cpu_budget_s:
-        return Decision(True, f"compute budget spent ({cpu_seconds:.0f} of {policy.cpu_budget_s:.0f} CPU s)",
-                        reversal=summary)
-    if round_no >= policy.max_rounds:
-        return Decision(True, f"reached the last round ({policy.max_rounds})", reversal=summary)
-    if status == "none":
-        return Decision(True, "depth gives no gain over the swept range", reversal=summary)
-    add: set[int] = set()
+    stop = _stop_before_depths(policy, status, round_no, cpu_seconds)
+    if stop is not None:
+        return Decision(True, stop, reversal=summary)
     if status == "observed" and k_star is not None:
-        past = [k for k in swept if k > k_star]
-        width = (ci[1] - ci[0]) if ci else math.inf
-        if width <= policy.target_width and len(past) >= 2:
-            return Decision(True, f"reversal depth interval {width:.1f} layers, within the target "
-                                  f"{policy.target_width:g}", reversal=summary)
-        lo, hi = math.floor(k_star), math.ceil(k_star)
-        add |= {k for k in (lo - 1, lo, hi, hi + 1)}
-        if ci:
-            add |= {math.floor(ci[0]), math.ceil(ci[1])}
-        beyond = sorted(k for k in swept if k > k_star)
-        nxt = max(swept) if beyond else hi
-        while len([k for k in set(swept) | add if k > k_star]) < 2:
-            nxt += max(1, nxt // 4)
-            add.add(nxt)
+        stop = _target_reached(swept, k_star, ci, policy)
+        if stop is not None:
+            return Decision(True, stop, reversal=summary)
+        add = _depths_near_minimum(swept, k_star, ci)
     else:  # still falling at the deepest depth (or too little to tell): go deeper
         deepest = max(swept)
         if deepest >= policy.high:
             return Decision(True, f"T still falls at the deepest allowed depth ({policy.high})", reversal=summary)
-        add |= {min(policy.high, math.ceil(deepest * 1.5)), min(policy.high, deepest * 2)}
+        add = {min(policy.high, math.ceil(deepest * 1.5)), min(policy.high, deepest * 2)}
     add = {k for k in add if policy.low <= k <= policy.high and k not in swept}
-    by_depth: dict[int, list[RunResult]] = {}
-    for r in runs:
-        by_depth.setdefault(r.depth, []).append(r)
-    seeds: dict[int, int] = {}
-    if policy.extra_seeds:
-        noisiest = max(by_depth, key=lambda k: _spread(by_depth[k]))
-        seeds[noisiest] = policy.extra_seeds
+    seeds = _extra_seeds(runs, policy)
     if not add and not seeds:
         return Decision(True, "no depth left to add near the minimum", reversal=summary)
     where = f"near the minimum at K={k_star:.1f}" if status == "observed" and k_star else "beyond the deepest depth"

@@ -22,6 +22,7 @@ import logging
 import os
 import socket
 import threading
+import time
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
@@ -80,14 +81,11 @@ def _rdb(url: str, *, heartbeat: bool = True) -> Any:
         kwargs["pool_pre_ping"] = True
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ExperimentalWarning)
-        try:
-            beats: dict[str, Any] = {}
-            if heartbeat:
-                beats = {"heartbeat_interval": HEARTBEAT_S, "grace_period": GRACE_S,
-                         "heartbeat_stale_trial_callback": optuna.storages.RetryHeartbeatStaleTrialCallback()}
-            storage = optuna.storages.RDBStorage(url, engine_kwargs=kwargs, **beats)
-        except Exception as exc:  # sqlalchemy/driver errors vary by backend
-            raise store_error("cannot open the sweep store", url, exc) from None
+        beats: dict[str, Any] = {}
+        if heartbeat:
+            beats = {"heartbeat_interval": HEARTBEAT_S, "grace_period": GRACE_S,
+                     "heartbeat_stale_trial_callback": optuna.storages.RetryHeartbeatStaleTrialCallback()}
+        storage = _open_racing_creators(lambda: optuna.storages.RDBStorage(url, engine_kwargs=kwargs, **beats), url)
     if url.startswith("sqlite"):
         from sqlalchemy import event
 
@@ -97,6 +95,28 @@ def _rdb(url: str, *, heartbeat: bool = True) -> Any:
 
         storage.engine.dispose()
     return storage
+
+
+def _open_racing_creators(open_storage: Any, url: str, attempts: int = 6) -> Any:
+    """Open the storage, retrying while another process is creating the same fresh schema.
+
+    Two processes opening a new store at once (two workers, or a reader polling a
+    sweep that has just started) both try to create Optuna's tables and stamp its
+    schema version; the loser gets an integrity or "already exists"/"locked"
+    error although the store is fine a moment later.
+    """
+    from sqlalchemy.exc import IntegrityError, OperationalError
+
+    for attempt in range(attempts):
+        try:
+            return open_storage()
+        except (IntegrityError, OperationalError) as exc:
+            if attempt == attempts - 1:
+                raise store_error("cannot open the sweep store", url, exc) from None
+            time.sleep(0.2 * (attempt + 1))
+        except Exception as exc:  # sqlalchemy/driver errors vary by backend
+            raise store_error("cannot open the sweep store", url, exc) from None
+    raise AssertionError("unreachable")
 
 
 @dataclass

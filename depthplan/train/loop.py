@@ -24,6 +24,7 @@ from __future__ import annotations
 
 import math
 import time
+from dataclasses import dataclass
 from typing import Callable
 
 import numpy as np
@@ -124,28 +125,90 @@ def _eval_subset(n_rows: int, eval_rows: int | None) -> torch.Tensor | None:
     return torch.from_numpy(np.sort(rng.choice(n_rows, size=eval_rows, replace=False)))
 
 
-def _train_cell(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: ProbeConfig, data: Dataset,
-                progress: ProgressFn | None, dtype: torch.dtype, eval_rows: int | None) -> list[RunResult]:
-    t_start = time.perf_counter()
+@dataclass
+class _CellTensors:
+    """A cell's data as tensors: training set with one-hot targets, evaluation rows, validation set."""
+
+    x: torch.Tensor
+    onehot: torch.Tensor
+    x_eval: torch.Tensor
+    y_eval: torch.Tensor
+    x_val: torch.Tensor
+    y_val: torch.Tensor
+
+
+def _cell_tensors(data: Dataset, dtype: torch.dtype, eval_rows: int | None) -> _CellTensors:
+    """The task's arrays as tensors of `dtype`, with the fixed evaluation subset picked out."""
     x = torch.from_numpy(data.x_train).to(dtype)
     y = torch.from_numpy(data.y_train)
     x_val = torch.from_numpy(data.x_val).to(dtype)
     y_val = torch.from_numpy(data.y_val)
-    n_rows, n_in = x.shape
     onehot = F.one_hot(y, data.n_classes).to(dtype)
-    subset = _eval_subset(n_rows, eval_rows)
+    subset = _eval_subset(x.shape[0], eval_rows)
     x_eval, y_eval = (x, y) if subset is None else (x[subset], y[subset])
+    return _CellTensors(x, onehot, x_eval, y_eval, x_val, y_val)
+
+
+@dataclass
+class _CellSetup:
+    """A cell's trainable state: stacked weights, their initial copy, minibatch streams, optimiser, probes."""
+
+    stack: _Stack
+    w0: list[torch.Tensor]
+    streams: list[BatchStream]
+    opt: _Optimizer
+    probe_rngs: list[np.random.Generator]
+    probe_at: set[int]
+
+    def probe(self, step: int, active: list[int], t: _CellTensors, probes: ProbeConfig, act: str,
+              probe_log: list[list[tuple[int, list[float], list[float]]]]) -> None:
+        """Log each active seed's layer displacements and gradient SNR at `step`."""
+        disp = [displacement(w.detach().numpy(), w_init.detach().numpy()) for w, w_init in zip(self.stack.ws, self.w0)]
+        snr = [np.full(len(active), math.nan)] * len(self.w0)
+        if probes.snr:
+            n_rows = t.x.shape[0]
+            rows = np.stack([self.probe_rngs[a].integers(0, n_rows, (probes.snr_window, self.streams[a].batch))
+                             for a in active])
+            snr = _gradient_snr(self.stack, t.x, t.onehot, rows, act)
+        for k, a in enumerate(active):
+            probe_log[a].append((step, [float(d[k]) for d in disp], [float(s[k]) for s in snr]))
+
+    def keep(self, rows: torch.Tensor) -> None:
+        """Drop finished seeds from the batch: keep the given rows of weights, state and initial weights."""
+        self.opt.keep(rows)
+        self.w0 = [w.index_select(0, rows) for w in self.w0]
+
+
+def _cell_setup(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: ProbeConfig, n_classes: int,
+                x: torch.Tensor, budget: int, dtype: torch.dtype) -> _CellSetup:
+    """Stack the seeds' initial weights and build their minibatch streams, optimiser and probe schedule."""
+    n_rows, n_in = x.shape
+    stack = _Stack(*stacked_weights(model, n_in, spec.depth, n_classes, spec.seeds, dtype))
+    w0 = [w.clone() for w in stack.ws]
+    streams = [BatchStream(s, n_rows, train.batch_size) for s in spec.seeds]
+    opt = _Optimizer(train, spec.learning_rate, stack, streams[0].batch)
+    probe_rngs = [np.random.default_rng([int(s), 0x5A1]) for s in spec.seeds]
+    probe_at = set(log_spaced_steps(budget, probes.n_points)) if (probes.displacement or probes.snr) else set()
+    return _CellSetup(stack, w0, streams, opt, probe_rngs, probe_at)
+
+
+def _validation_of(stack: _Stack, done: list[int], t: _CellTensors, act: str) -> list[float]:
+    """Validation accuracy of the seeds at rows `done` of the stack."""
+    rows_done = torch.tensor(done)
+    finished = _Stack([w.index_select(0, rows_done) for w in stack.ws],
+                      [b.index_select(0, rows_done) for b in stack.bs])
+    return [float(v) for v in _evaluate(finished, t.x_val, t.y_val, act)[1]]
+
+
+def _train_cell(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: ProbeConfig, data: Dataset,
+                progress: ProgressFn | None, dtype: torch.dtype, eval_rows: int | None) -> list[RunResult]:
+    t_start = time.perf_counter()
+    t = _cell_tensors(data, dtype, eval_rows)
     act = model.activation
     criterion = Criterion.from_config(train.converge_when)
     budget = min(train.max_updates, spec.stop_after or train.max_updates)
     seeds = spec.seeds
-
-    stack = _Stack(*stacked_weights(model, n_in, spec.depth, data.n_classes, seeds, dtype))
-    w0 = [w.clone() for w in stack.ws]
-    streams = [BatchStream(s, n_rows, train.batch_size) for s in seeds]
-    opt = _Optimizer(train, spec.learning_rate, stack, streams[0].batch)
-    probe_rngs = [np.random.default_rng([int(s), 0x5A1]) for s in seeds]
-    probe_at = set(log_spaced_steps(budget, probes.n_points)) if (probes.displacement or probes.snr) else set()
+    cell = _cell_setup(spec, model, train, probes, data.n_classes, t.x, budget, dtype)
 
     active = list(range(len(seeds)))                   # positions in `seeds` still training
     curves: list[list[tuple[int, float]]] = [[] for _ in seeds]
@@ -154,30 +217,21 @@ def _train_cell(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: 
     ended: dict[int, dict] = {}
     step = 0
 
-    def probe(step_now: int) -> None:
-        disp = [displacement(w.detach().numpy(), w_init.detach().numpy()) for w, w_init in zip(stack.ws, w0)]
-        snr = [np.full(len(active), math.nan)] * len(w0)
-        if probes.snr:
-            rows = np.stack([probe_rngs[a].integers(0, n_rows, (probes.snr_window, streams[a].batch)) for a in active])
-            snr = _gradient_snr(stack, x, onehot, rows, act)
-        for k, a in enumerate(active):
-            probe_log[a].append((step_now, [float(d[k]) for d in disp], [float(s[k]) for s in snr]))
-
     while active:
         t_block = time.perf_counter()
         n = min(train.eval_every - step % train.eval_every, budget - step)
-        rows = np.stack([streams[a].take(n) for a in active])       # (n_active, n, batch)
-        for xb, target in _minibatches(x, onehot, rows):
-            if step in probe_at:
-                probe(step)
-            opt.step(xb, target, act)
+        rows = np.stack([cell.streams[a].take(n) for a in active])       # (n_active, n, batch)
+        for xb, target in _minibatches(t.x, t.onehot, rows):
+            if step in cell.probe_at:
+                cell.probe(step, active, t, probes, act, probe_log)
+            cell.opt.step(xb, target, act)
             step += 1
-        if step in probe_at and step == budget:
-            probe(step)
-        loss, acc = _evaluate(stack, x_eval, y_eval, act)
+        if step in cell.probe_at and step == budget:
+            cell.probe(step, active, t, probes, act, probe_log)
+        loss, acc = _evaluate(cell.stack, t.x_eval, t.y_eval, act)
         val_acc = np.full(len(active), math.nan)
-        if criterion.needs_validation and len(y_val):
-            val_acc = _evaluate(stack, x_val, y_val, act)[1]
+        if criterion.needs_validation and len(t.y_val):
+            val_acc = _evaluate(cell.stack, t.x_val, t.y_val, act)[1]
         done, keep = [], []
         for k, a in enumerate(active):
             curves[a].append((step, float(loss[k])))
@@ -187,23 +241,27 @@ def _train_cell(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: 
                 ended[a] = {"status": v, "iterations": step, "loss": float(loss[k]), "acc": float(acc[k])}
         seat_time[active] += (time.perf_counter() - t_block) / len(active)
         if done:
-            if len(y_val):
-                rows_done = torch.tensor(done)
-                finished = _Stack([w.index_select(0, rows_done) for w in stack.ws],
-                                  [b.index_select(0, rows_done) for b in stack.bs])
-                for k, v in zip(done, _evaluate(finished, x_val, y_val, act)[1]):
-                    ended[active[k]]["val"] = float(v)
-            rows_keep = torch.tensor(keep, dtype=torch.long)
-            opt.keep(rows_keep)                         # finished seeds leave the batch
-            w0 = [w.index_select(0, rows_keep) for w in w0]
+            if len(t.y_val):
+                for k, v in zip(done, _validation_of(cell.stack, done, t, act)):
+                    ended[active[k]]["val"] = v
+            cell.keep(torch.tensor(keep, dtype=torch.long))         # finished seeds leave the batch
         if progress is not None:
             progress(n * len(active) + len(done) * (budget - step))
         active = [active[k] for k in keep]
 
-    setup = (time.perf_counter() - t_start - seat_time.sum()) / len(seeds)
+    return _cell_results(spec, model, train, probes, data, ended, seat_time, time.perf_counter() - t_start,
+                         curves, probe_log)
+
+
+def _cell_results(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: ProbeConfig, data: Dataset,
+                  ended: dict[int, dict], seat_time: np.ndarray, elapsed: float,
+                  curves: list[list[tuple[int, float]]],
+                  probe_log: list[list[tuple[int, list[float], list[float]]]]) -> list[RunResult]:
+    """Every seed's `RunResult`, the cell's setup time (`elapsed` less the seats' time) shared evenly."""
+    setup = (elapsed - seat_time.sum()) / len(spec.seeds)
     return [_result(spec, model, train, probes, data, seed, ended[a], float(seat_time[a] + setup),
                     curves[a], probe_log[a])
-            for a, seed in enumerate(seeds)]
+            for a, seed in enumerate(spec.seeds)]
 
 
 def _result(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: ProbeConfig, data: Dataset,

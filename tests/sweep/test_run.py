@@ -36,9 +36,12 @@ def _start(config: Path, out: Path, *extra: str) -> subprocess.Popen:
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=_env())
 
 
-def _wait_for_cells(out: Path, name: str, n: int, timeout_s: float = 400) -> None:
+def _wait_for_cells(out: Path, name: str, n: int, proc: subprocess.Popen, timeout_s: float = 400) -> None:
     deadline = time.time() + timeout_s
     while time.time() < deadline:
+        if proc.poll() is not None:                   # the run ended early: show why instead of waiting
+            _, err = proc.communicate()
+            raise AssertionError(f"depthplan run exited with {proc.returncode} before {n} cells: {err[-2000:]}")
         if (out / "store.db").exists():
             try:
                 if SweepStore(local_url(out), name).counts()["complete"] >= n:
@@ -77,7 +80,7 @@ def test_rerun_after_interruption_finishes_only_what_is_missing(write_yaml, tmp_
     config = write_yaml(SLOW)
     out = tmp_path / "res"
     proc = _start(config, out)
-    _wait_for_cells(out, "slow", 2)
+    _wait_for_cells(out, "slow", 2, proc)
     proc.send_signal(signal.SIGINT if how == "interrupt" else signal.SIGKILL)
     _, err = proc.communicate(timeout=60)
     if how == "interrupt":
