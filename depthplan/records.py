@@ -108,7 +108,7 @@ class RunResult:
     width: int                      # width of the first hidden layer
     seed: int
     learning_rate: float
-    status: str                     # one of STATUSES
+    status: RunStatus               # a str enum: compares equal to its value ("converged", ...)
     iterations: int                 # T if converged, updates done otherwise
     wall_seconds: float             # this seed's share of its cell's wall time
     seconds_per_update: float       # wall seconds per update of this seed
@@ -119,7 +119,7 @@ class RunResult:
     activation: str = ""
     init: str = ""
     optimizer: str = "sgd"
-    lr_mode: str = "fixed"          # fixed | tuned
+    lr_mode: RateMode = RateMode.FIXED   # fixed | tuned | tuning
     cell_id: str = ""
     # curves: evaluation steps with the full-training-set loss at each
     eval_steps: tuple[int, ...] = ()
@@ -129,6 +129,12 @@ class RunResult:
     displacement: tuple[tuple[float, ...], ...] = ()
     snr_db: tuple[tuple[float, ...], ...] = ()
     extra: dict[str, Any] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        # strings from CSV, JSON or callers become the enums; a value this version does not know
+        # (a store written by another version) stays a string, and the fit leaves such runs out
+        object.__setattr__(self, "status", _as_enum(RunStatus, self.status))
+        object.__setattr__(self, "lr_mode", _as_enum(RateMode, self.lr_mode))
 
     def to_dict(self) -> dict[str, Any]:
         """Plain JSON-ready dict (tuples become lists, NaN becomes None)."""
@@ -153,11 +159,20 @@ class RunResult:
         return {c: d[c] for c in RUN_COLUMNS}
 
 
+def _as_enum(kind: type[Enum], value: Any) -> Any:
+    try:
+        return kind(value)
+    except ValueError:
+        return value
+
+
 def _num(v: Any) -> Any:
     return math.nan if v is None else v
 
 
 def _jsonable(v: Any) -> Any:
+    if isinstance(v, Enum):
+        return v.value
     if isinstance(v, float):
         return v if math.isfinite(v) else None
     if isinstance(v, dict):
@@ -217,8 +232,11 @@ class CellSpec:
     depth: int
     seeds: tuple[int, ...]
     learning_rate: float
-    lr_mode: str = "fixed"            # fixed | tuned | tuning
+    lr_mode: RateMode = RateMode.FIXED   # fixed | tuned | tuning
     stop_after: int | None = None     # early-censoring budget below max_updates, if any
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "lr_mode", _as_enum(RateMode, self.lr_mode))
 
     @property
     def cell_id(self) -> str:
@@ -228,7 +246,7 @@ class CellSpec:
 
     def to_dict(self) -> dict[str, Any]:
         return {"depth": self.depth, "seeds": list(self.seeds), "learning_rate": self.learning_rate,
-                "lr_mode": self.lr_mode, "stop_after": self.stop_after}
+                "lr_mode": self.lr_mode.value, "stop_after": self.stop_after}
 
     @classmethod
     def from_dict(cls, d: dict[str, Any]) -> "CellSpec":

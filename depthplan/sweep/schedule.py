@@ -22,7 +22,7 @@ from dataclasses import dataclass, field
 from typing import Any, Callable
 
 from ..config import AdaptiveConfig, SweepFile, TuneConfig
-from ..records import CellSpec, RunResult, rate_group
+from ..records import CellSpec, RateMode, RunResult, rate_group
 
 log = logging.getLogger(__name__)
 
@@ -108,7 +108,7 @@ def tune_depth(cfg: SweepFile, storage: Any, depth: int, *, progress: Callable[[
         lr = trial.suggest_float("learning_rate", tune.low, tune.high, log=True)
         if data is None:
             data = load_dataset(cfg.data)
-        spec = CellSpec(depth=depth, seeds=seeds, learning_rate=lr, lr_mode="tuning")
+        spec = CellSpec(depth=depth, seeds=seeds, learning_rate=lr, lr_mode=RateMode.TUNING)
         try:
             runs = train_cell(spec, cfg.model, cfg.train, cfg.probes, data, progress=progress)
         except BaseException:
