@@ -1,7 +1,7 @@
 """The package's import graph follows the layout of shared/STYLE.md section 1 (read with ast, nothing imported).
 
 Wings: base (errors, records, config, checks, __init__, __main__) <- train <- sweep <- cli and
-base <- fitting <- reporting <- cli. sweep may also use fitting (the adaptive schedule fits between
+base <- fitting <- reporting <- cli; the Python API (api) stands on the top floor beside cli. sweep may also use fitting (the adaptive schedule fits between
 rounds; fitting is torch-free, so no circle and no torch enters through it). Nothing imports cli;
 fitting and reporting never reach torch or train; fitting never reaches matplotlib.
 """
@@ -35,7 +35,7 @@ def _wing(module: str) -> str:
         return "base"
     if parts[1] in BASE:
         return "base"
-    return "cli" if parts[1] in {"cli", "__main__"} else parts[1]
+    return "cli" if parts[1] in {"cli", "__main__", "api"} else parts[1]   # the two front doors
 
 
 def _imports(path: Path, pkg: Path = PKG) -> set[str]:

@@ -313,6 +313,25 @@ def default_json_path(path: Path) -> Path:
     return path / "fit.json" if path.is_dir() else path.with_name(path.stem + ".fit.json")
 
 
+def fit_loaded(runs: list[RunResult], *, source: str, kind: str, info: dict[str, Any] | None = None,
+               **kw: Any) -> dict[str, Any]:
+    """fit.json's content for runs already read: `fit_runs` plus the `input` block.
+
+    Args:
+        runs: the runs (from `load_runs`, or a table given in memory).
+        source: what the runs came from, as fit.json's `source` states it.
+        kind: `results_folder` or `table`.
+        info: the folder's sweep.json (eval_every, max_updates, name), if any.
+        **kw: passed to `fit_runs`.
+    """
+    info = info or {}
+    kw.setdefault("eval_every", eval_interval(runs, info))
+    kw.setdefault("source", source)
+    fit = fit_runs(runs, **kw)
+    fit["input"] = _clean({"kind": kind, "sweep_name": info.get("name"), "max_updates": info.get("max_updates")})
+    return fit
+
+
 def fit_path(path: Path, json_out: Path | None = None, **kw: Any) -> tuple[dict[str, Any], Path]:
     """Load a results folder or measurements table, fit it, and write fit.json.
 
@@ -328,13 +347,9 @@ def fit_path(path: Path, json_out: Path | None = None, **kw: Any) -> tuple[dict[
         DataError: unreadable input, too few depths, or no folder for json_out.
     """
     path = Path(path)
-    runs = load_runs(path)
     info = read_sweep_info(path) if path.is_dir() else {}
-    kw.setdefault("eval_every", eval_interval(runs, info))
-    kw.setdefault("source", str(path))
-    fit = fit_runs(runs, **kw)
-    fit["input"] = _clean({"kind": "results_folder" if path.is_dir() else "table",
-                           "sweep_name": info.get("name"), "max_updates": info.get("max_updates")})
+    fit = fit_loaded(load_runs(path), source=str(path), kind="results_folder" if path.is_dir() else "table",
+                     info=info, **kw)
     out = Path(json_out) if json_out is not None else default_json_path(path)
     if not out.parent.is_dir():
         raise DataError(f"{out}: the folder {out.parent} does not exist")

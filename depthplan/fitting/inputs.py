@@ -26,7 +26,7 @@ import math
 from dataclasses import fields
 from pathlib import Path
 from types import SimpleNamespace
-from typing import Any, Callable, Sequence
+from typing import Any, Callable, Mapping, Sequence
 
 from ..errors import DataError
 from ..records import RUN_COLUMNS, STATUSES, RateMode, RunResult, rate_group
@@ -126,8 +126,8 @@ COLUMN_SPECS: dict[str, _Spec] = {
 assert set(RUN_COLUMNS) <= set(COLUMN_SPECS)
 
 
-def _cell_error(name: str, line: int, column: str, message: str, raw: str) -> DataError:
-    return DataError(f"{name} line {line}, column {column}: {message}, got {raw!r}")
+def _cell_error(where: str, column: str, message: str, raw: str) -> DataError:
+    return DataError(f"{where}, column {column}: {message}, got {raw!r}")
 
 
 def read_table(path: Path) -> list[RunResult]:
@@ -156,12 +156,12 @@ def read_table(path: Path) -> list[RunResult]:
                 raise DataError(f"{name}: empty file; expected a header line with columns "
                                 f"{','.join(REQUIRED_COLUMNS)}")
             columns = [h.strip().lower() for h in header]
-            _check_header(name, columns)
+            _check_header(f"{name} line 1", columns)
             rows = []
             for cells in reader:
                 if not any(c.strip() for c in cells):
                     continue
-                rows.append(_parse_row(name, reader.line_num, columns, cells))
+                rows.append(_parse_row(f"{name} line {reader.line_num}", columns, cells))
     except UnicodeDecodeError:
         raise DataError(f"{name}: not a text CSV file (it is not UTF-8)") from None
     except csv.Error as exc:
@@ -171,27 +171,28 @@ def read_table(path: Path) -> list[RunResult]:
     return _with_default_seeds(rows)
 
 
-def _check_header(name: str, columns: list[str]) -> None:
+def _check_header(where: str, columns: list[str]) -> None:
     missing = [c for c in REQUIRED_COLUMNS if c not in columns]
     if missing:
-        raise DataError(f"{name} line 1: missing column{'s' if len(missing) > 1 else ''} "
+        raise DataError(f"{where}: missing column{'s' if len(missing) > 1 else ''} "
                         f"{', '.join(missing)} (a table needs {','.join(REQUIRED_COLUMNS)}; "
                         f"it has {','.join(columns) or 'none'})")
     seen: set[str] = set()
     for col in columns:
         if col in seen:
-            raise DataError(f"{name} line 1: column {col} appears twice")
+            raise DataError(f"{where}: column {col} appears twice")
         seen.add(col)
         if col not in COLUMN_SPECS:
             close = difflib.get_close_matches(col, list(COLUMN_SPECS), n=1, cutoff=0.8)
             if close:
-                raise DataError(f"{name} line 1: unknown column {col!r} "
+                raise DataError(f"{where}: unknown column {col!r} "
                                 f"(did you mean {close[0]!r}?)")
 
 
-def _parse_row(name: str, line: int, columns: list[str], cells: list[str]) -> dict[str, Any]:
+def _parse_row(where: str, columns: list[str], cells: list[str]) -> dict[str, Any]:
+    """One row's cells (text) checked against COLUMN_SPECS; `where` names the row in messages."""
     if len(cells) > len(columns) and any(c.strip() for c in cells[len(columns):]):
-        raise DataError(f"{name} line {line}: {len(cells)} fields but the header has "
+        raise DataError(f"{where}: {len(cells)} fields but the header has "
                         f"{len(columns)}")
     row: dict[str, Any] = {}
     for col, (parse, message, default) in COLUMN_SPECS.items():
@@ -202,16 +203,48 @@ def _parse_row(name: str, line: int, columns: list[str], cells: list[str]) -> di
         raw = cells[i].strip() if i < len(cells) else ""
         if raw == "":
             if col in REQUIRED_COLUMNS:
-                raise _cell_error(name, line, col, f"{message} (the cell is empty)", raw)
+                raise _cell_error(where, col, f"{message} (the cell is empty)", raw)
             row[col] = default
             continue
         try:
             row[col] = parse(raw)
         except _Refused as exc:
-            raise _cell_error(name, line, col, str(exc), raw) from None
+            raise _cell_error(where, col, str(exc), raw) from None
         except ValueError:
-            raise _cell_error(name, line, col, message, raw) from None
+            raise _cell_error(where, col, message, raw) from None
     return row
+
+
+def _cell_text(value: Any) -> str:
+    """A value from an in-memory column as the text a CSV cell would hold (missing -> empty)."""
+    if value is None or type(value).__name__ in ("NAType", "NaTType"):
+        return ""
+    if isinstance(value, str):
+        return value
+    if hasattr(value, "item"):                    # numpy scalars
+        value = value.item()
+    if isinstance(value, float):
+        return "" if math.isnan(value) else repr(value)
+    return str(value)
+
+
+def read_columns(columns: Mapping[str, Sequence[Any]], name: str = "table") -> list[RunResult]:
+    """A measurements table given as equal-length columns (a DataFrame's, or a dict of arrays).
+
+    Checked by the same rules as a CSV table (`read_table`); messages name the column and the row
+    (counted from 0, as a DataFrame's position), e.g. `DataFrame row 3, column iterations: ...`.
+    """
+    names = [str(c).strip().lower() for c in columns]
+    _check_header(name, names)
+    cols = [list(v) for v in columns.values()]
+    lengths = sorted({len(c) for c in cols})
+    if len(lengths) > 1:
+        sizes = ", ".join(f"{n} {len(c)}" for n, c in zip(names, cols))
+        raise DataError(f"{name}: columns differ in length ({sizes}); a table needs one value per row in every column")
+    if not lengths or lengths[0] == 0:
+        raise DataError(f"{name}: no data rows")
+    rows = [_parse_row(f"{name} row {i}", names, [_cell_text(c[i]) for c in cols]) for i in range(lengths[0])]
+    return _with_default_seeds(rows)
 
 
 def _with_default_seeds(rows: list[dict[str, Any]]) -> list[RunResult]:

@@ -216,10 +216,9 @@ def _html_figure(f: FigureFile, number: int, fit: dict[str, Any]) -> str:
             f"</code> and <code>figures/{html.escape(f.svg.name)}</code>.</figcaption></figure>")
 
 
-def to_html(blocks: Sequence[Block], fit: dict[str, Any], title: str) -> str:
-    """The report as one self-contained HTML page."""
+def html_body(blocks: Sequence[Block], fit: dict[str, Any]) -> str:
+    """The blocks as HTML elements, one per line (the page's body, or a notebook cell's view)."""
     body: list[str] = []
-    nav = [(b[3], b[2]) for b in blocks if b[0] == "h" and b[1] == 2]
     n_fig = 0
     for b in blocks:
         kind = b[0]
@@ -242,10 +241,16 @@ def to_html(blocks: Sequence[Block], fit: dict[str, Any], title: str) -> str:
         elif kind == "pre":
             body.append(f"<details><summary>{html.escape(b[1])}</summary>"
                         f"<pre>{html.escape(b[2])}</pre></details>")
+    return "\n".join(body)
+
+
+def to_html(blocks: Sequence[Block], fit: dict[str, Any], title: str) -> str:
+    """The report as one self-contained HTML page."""
+    nav = [(b[3], b[2]) for b in blocks if b[0] == "h" and b[1] == 2]
     links = "".join(f'<a href="#{a}">{html.escape(t)}</a>' for a, t in nav)
     return ("<!doctype html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n"
             f'<meta http-equiv="Content-Security-Policy" content="{_CSP}">\n'
             '<meta name="viewport" content="width=device-width, initial-scale=1">\n'
             f"<title>{html.escape(title)}</title>\n<style>{_CSS}</style>\n</head>\n<body>\n<main>\n"
-            f"<h1>{html.escape(title)}</h1>\n<nav>{links}</nav>\n" + "\n".join(body)
+            f"<h1>{html.escape(title)}</h1>\n<nav>{links}</nav>\n" + html_body(blocks, fit)
             + "\n</main>\n</body>\n</html>\n")
