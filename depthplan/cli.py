@@ -114,11 +114,24 @@ def _cmd_run(args: argparse.Namespace) -> int:
     return 0
 
 
+def _size(text: str) -> int:
+    """A proxy or target size: a whole number >= 1 (argparse type)."""
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a whole number >= 1, got {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"must be a whole number >= 1, got {text!r}")
+    return value
+
+
 def _cmd_fit(args: argparse.Namespace) -> int:
     from .fitting import fit_path, format_summary
 
+    target = {"width": args.target_width, "train_rows": args.target_rows}
     fit, written = fit_path(Path(args.path), Path(args.json) if args.json else None,
-                            save_fraction=args.save_fraction, n_boot=args.bootstrap)
+                            save_fraction=args.save_fraction, n_boot=args.bootstrap,
+                            target=target if any(target.values()) else None)
     print(format_summary(fit))
     print(f"fit written to {written}")
     return 0
@@ -212,6 +225,10 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--save-fraction", type=float, default=0.05, metavar="F",
                     help="a layer is worth adding while it saves at least this fraction of updates (default 0.05)")
     sp.add_argument("--bootstrap", type=int, default=400, metavar="N", help="bootstrap resamples (default 400)")
+    sp.add_argument("--target-width", type=_size, metavar="W",
+                    help="hidden width of the job to plan for (needs runs at two or more proxy widths)")
+    sp.add_argument("--target-rows", type=_size, metavar="N",
+                    help="training rows of the job to plan for (needs runs at two or more proxy row counts)")
     sp = add("report", _cmd_report, "write the hand-over report (Markdown + self-contained HTML)")
     sp.add_argument("path", metavar="PATH")
     sp.add_argument("--out", metavar="DIR", help="report folder (default: PATH's folder)")

@@ -19,7 +19,7 @@ from .records import ReversalStatus
 
 __all__ = ["ABSENT", "Record", "FitResult", "FitGroup", "PowerLaw", "Reversal", "Planning",
            "PlannedDepth", "Diffusion", "DiffusionLayer", "DiffusionDepth", "Curve", "DepthRow", "Bootstrap",
-           "GroupLabel", "FitInput", "LrInteraction"]
+           "GroupLabel", "FitInput", "LrInteraction", "Transfer", "TransferTarget"]
 
 
 class _Absent:
@@ -281,6 +281,36 @@ class LrInteraction(Record):
 
 
 @dataclass(frozen=True)
+class TransferTarget(Record):
+    width: int | None = _absent()
+    train_rows: int | None = _absent()
+    extrapolation_factor: dict[str, float] = _absent()
+    reversal_depth: float | None = _absent()
+    reversal_depth_ci: list[float] | None = _absent()
+    slope: float | None = _absent()
+    slope_ci: list[float] | None = _absent()
+    alpha: float | None = _absent()
+    alpha_ci: list[float] | None = _absent()
+    last_depth_worth_adding: int | None = _absent()
+    depth_to_plan_for: int | None = _absent()
+    depth_to_plan_for_range: list[int] | None = _absent()
+    notes: list[str] = _absent()
+
+
+@dataclass(frozen=True)
+class Transfer(Record):
+    status: str = _absent()
+    reason: str = _absent()
+    axes: list[str] = _absent()
+    sizes: list[dict[str, Any]] = _absent()
+    skipped_sizes: list[dict[str, Any]] = _absent()
+    reversal_depth_law: dict[str, Any] | None = _absent()
+    slope_law: dict[str, Any] | None = _absent()
+    target: TransferTarget | None = _absent()
+    warning: str = _absent()
+
+
+@dataclass(frozen=True)
 class FitGroup(Record):
     """One fitted learning-rate curve: the top level of fit.json and each `by_learning_rate` entry."""
 
@@ -308,6 +338,7 @@ class FitResult(FitGroup):
     by_learning_rate: list[FitGroup] = _absent()
     lr_interaction: LrInteraction | None = _absent()
     input: FitInput = _absent()
+    transfer: Transfer | None = _absent()
 
     @property
     def groups(self) -> list[FitGroup]:

@@ -94,7 +94,7 @@ def primary_group(groups: Mapping[RateGroup, Sequence[Any]]) -> RateGroup:
 #: Columns of `runs.csv`, in order. `iterations` is T for converged runs and
 #: the number of updates done (the budget) for censored ones.
 RUN_COLUMNS = (
-    "depth", "width", "seed", "learning_rate", "lr_mode", "status", "iterations",
+    "depth", "width", "train_rows", "seed", "learning_rate", "lr_mode", "status", "iterations",
     "wall_seconds", "seconds_per_update", "final_train_loss", "final_train_accuracy",
     "validation_accuracy", "n_params", "activation", "init", "optimizer", "cell_id",
 )
@@ -116,6 +116,7 @@ class RunResult:
     final_train_accuracy: float
     validation_accuracy: float
     n_params: int
+    train_rows: int = 0             # training rows this proxy saw (0: not recorded, the whole split)
     activation: str = ""
     init: str = ""
     optimizer: str = "sgd"
@@ -156,6 +157,7 @@ class RunResult:
     def row(self) -> dict[str, Any]:
         """The `runs.csv` row of this run."""
         d = self.to_dict()
+        d["train_rows"] = d["train_rows"] or None      # not recorded: an empty cell
         return {c: d[c] for c in RUN_COLUMNS}
 
 

@@ -82,6 +82,7 @@ from .planning import (
     _planning_block,
 )
 from .summary import _describe, _group_warnings, _plural
+from .transfer import fit_transfer, size_of, target_error
 
 __all__ = ["SCHEMA", "fit_runs", "fit_path", "default_json_path", "power_law_curve"]
 
@@ -240,8 +241,45 @@ def _fit_by_rate(groups: dict[tuple[str, float | None], list[RunResult]], primar
     return by_rate
 
 
+def _by_size(runs: list[RunResult]) -> dict[tuple[int, int], list[RunResult]]:
+    sizes: dict[tuple[int, int], list[RunResult]] = {}
+    for r in runs:
+        sizes.setdefault(size_of(r), []).append(r)
+    return sizes
+
+
+def _largest(sizes: dict[tuple[int, int], list[RunResult]]) -> tuple[int, int]:
+    """The proxy closest to a bigger job: most width x rows, then most runs."""
+    return max(sizes, key=lambda s: (max(s[0], 1) * max(s[1], 1), len(sizes[s])))
+
+
+def _transfer(sizes: dict[tuple[int, int], list[RunResult]], target: dict[str, Any] | None,
+              kw: dict[str, Any], source: str) -> dict[str, Any]:
+    """Per-size fits of each size's primary rate curve, then the trend along size (fitting.transfer)."""
+    fits, skipped = {}, {}
+    for size, rs in sizes.items():
+        groups = group_runs(rs)
+        try:
+            fits[size] = _fit_group(groups[primary_group(groups)], source=f"{source or 'input'} (size {size})", **kw)
+        except DataError as exc:
+            skipped[size] = str(exc)
+    return fit_transfer(fits, target=target, save_fraction=kw["save_fraction"], n_boot=kw["n_boot"],
+                        seed=kw["seed"] + 7, skipped=skipped)
+
+
+def _check_target(target: dict[str, Any] | None, sizes: dict[tuple[int, int], list[RunResult]]) -> None:
+    if not target or not any(target.get(a) for a in ("width", "train_rows")):
+        return
+    rows = [{"width": w or None, "train_rows": n or None} for w, n in sizes]
+    why = target_error(target, rows)
+    if why:
+        from ..errors import ConfigError
+        raise ConfigError(f"target (--target-width/--target-rows or the sweep file's target block): {why}")
+
+
 def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int = 400,
-             seed: int = 0, eval_every: int | None = None, source: str = "") -> dict[str, Any]:
+             seed: int = 0, eval_every: int | None = None, source: str = "",
+             target: dict[str, Any] | None = None) -> dict[str, Any]:
     """Fit the depth law, the reversal and the planning figures to measured runs.
 
     Args:
@@ -255,6 +293,8 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
         eval_every: evaluation interval, for the coarse-evaluation warning
             (default: read from the runs).
         source: name of the input, used in messages and stored in the result.
+        target: the job to plan for, {"width": W, "train_rows": n} (either may be None); with
+            runs at several proxy sizes the `transfer` block predicts its figures.
 
     Returns:
         The content of fit.json (schema in the module docstring and
@@ -274,9 +314,14 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
         raise DataError(f"{source or 'input'}: no finished runs to fit")
     if eval_every is None:
         eval_every = eval_interval(known)
-    groups = group_runs(known)
-    primary = primary_group(groups)
+    sizes = _by_size(known)
+    _check_target(target, sizes)
     kw = dict(save_fraction=save_fraction, n_boot=n_boot, seed=seed, eval_every=eval_every)
+    transfer = None
+    if len(sizes) > 1:          # the headline describes the largest proxy; the trend goes in `transfer`
+        transfer = _transfer(sizes, target, kw, source)
+    groups = group_runs(sizes[_largest(sizes)] if transfer is not None else known)
+    primary = primary_group(groups)
     main = {"group": _group_label(primary, groups[primary]),
             **_fit_group(groups[primary], source=source, **kw)}
     by_rate, interaction = [], None
@@ -289,8 +334,18 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
                         "a learning-rate search left out")
     if interaction:
         notes.append(interaction["message"])
+    if transfer is not None:
+        biggest = _largest(sizes)
+        notes.insert(0, f"runs at {len(sizes)} proxy sizes: the figures above are the largest proxy's "
+                        f"(width {biggest[0] or 'not recorded'}, {biggest[1] or 'all'} training rows); "
+                        "`transfer` carries the law along size")
+        if transfer.get("warning"):
+            notes.append(f"transfer: {transfer['warning']}")
+        notes += [f"transfer to the target: {n}" for n in (transfer["target"] or {}).get("notes", [])]
     result = {"schema": SCHEMA, "source": source, **main, "by_learning_rate": by_rate,
               "lr_interaction": interaction, "warnings": notes}
+    if transfer is not None:
+        result["transfer"] = transfer
     return _clean(result)
 
 

@@ -6,7 +6,7 @@ probes) and/or `runs.csv` (columns `records.RUN_COLUMNS`), and optionally
 `sweep.json` (`eval_every`, `max_updates`, `name`). A measurements table is a
 CSV file that a user wrote about their own jobs:
 
-    depth,iterations[,seed][,status][,seconds_per_update][,learning_rate][,width][,eval_every]
+    depth,iterations[,seed][,status][,seconds_per_update][,learning_rate][,width][,train_rows][,eval_every]
 
 `status` is one of `converged|censored|diverged` (empty means converged); a
 censored row's `iterations` is the budget it ran out of. `runs.csv` is read by
@@ -111,6 +111,7 @@ COLUMN_SPECS: dict[str, _Spec] = {
     "seconds_per_update": (_positive_number, "must be a positive number", math.nan),
     "learning_rate": (_positive_number, "must be a positive number", math.nan),
     "width": (_positive_int, "must be a whole number >= 1", 0),
+    "train_rows": (_positive_int, "must be a whole number >= 1", 0),
     "eval_every": (_positive_int, "must be a whole number >= 1", None),
     "lr_mode": (_lr_mode, "must be fixed or tuned", "fixed"),
     "wall_seconds": (_nonnegative_number, "must be a number >= 0", math.nan),

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from typing import Any, Sequence
 
-from ..fit_record import FitResult, Planning, Reversal
+from ..fit_record import FitResult, Planning, Reversal, Transfer
 from .depthlaw import _Arrays
 
 # ---------------------------------------------------------------- wording
@@ -111,6 +111,7 @@ def format_summary(fit: FitResult | dict[str, Any]) -> str:
     probes = _probe_line(r)
     if probes:
         lines.append(probes)
+    lines += _transfer_lines(r.transfer)
     if r.lr_interaction:
         lines.append(f"Several learning-rate groups: the figures above are for the "
                      f"{_describe(r.group.to_dict())}; each group is fitted in by_learning_rate.")
@@ -160,6 +161,41 @@ def _planning_lines(plan: Planning) -> list[str]:
                      f"{_ci_text(opt.ci, '.0f')}" + (" [extrapolated]" if opt.extrapolated else "") + ".")
     elif opt.note:
         lines.append(f"Compute-optimal depth: not given ({opt.note}).")
+    return lines
+
+
+def _size_words(width: Any, rows: Any) -> str:
+    return ", ".join(p for p in (f"width {width}" if width else "", f"{rows} training rows" if rows else "") if p)
+
+
+def _transfer_lines(t: Transfer | None) -> list[str]:
+    """Per-size K* and s, the trend's exponents, and the target's figures with their extrapolation."""
+    if not t or t.status == "single_size":
+        return []
+    sizes = "; ".join(f"{_size_words(s['width'], s['train_rows'])}: K* "
+                      + (f"{s['reversal_depth']:.1f}" if s["reversal_depth"] else s["reversal_status"].replace("_", " "))
+                      + f", s {s['slope']:.2f}" for s in t.sizes)
+    lines = [f"Proxy sizes ({len(t.sizes)}): {sizes}."]
+    law = t.reversal_depth_law
+    if law:
+        lines.append("K* moves with size as " + ", ".join(
+            f"{a}^{e['exponent']:.2f}{_ci_text(e['ci'])}" for a, e in law["by_axis"].items()) + ".")
+    if t.status != "supported":
+        lines.append(f"Transfer to a bigger job: not supported by the data ({t.reason}).")
+    tg = t.target
+    if tg:
+        where = _size_words(tg.width, tg.train_rows)
+        factor = ", ".join(f"{v:.1f}x the largest proxy's {a}" + (" [a guess, past 8x]" if v > 8 else "")
+                           for a, v in tg.extrapolation_factor.items())
+        if tg.depth_to_plan_for is not None:
+            span = tg.depth_to_plan_for_range
+            lines.append(f"Target ({where}; {factor}): plan for {_plural(tg.depth_to_plan_for, 'layer')}"
+                         + (f" (range {span[0]} to {span[1]})" if span else "")
+                         + f"; K* {tg.reversal_depth:.1f}{_ci_text(tg.reversal_depth_ci, '.1f')}"
+                         + (f", s {tg.slope:.2f}{_ci_text(tg.slope_ci)}" if tg.slope is not None else "") + ".")
+        else:
+            lines.append(f"Target ({where}; {factor}): no target depth"
+                         + (f"; s {tg.slope:.2f}{_ci_text(tg.slope_ci)}" if tg.slope is not None else "") + ".")
     return lines
 
 
