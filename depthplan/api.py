@@ -85,7 +85,8 @@ def _runs_of(data: Any) -> tuple[list, str, str, dict[str, Any]]:
                     f"columns, got {type(data).__name__}")
 
 
-def fit(data: Any, *, bootstrap: int = 400, seed: int = 0, save_fraction: float = 0.05) -> FitResult:
+def fit(data: Any, *, bootstrap: int = 400, seed: int = 0, save_fraction: float = 0.05,
+        target_width: int | None = None, target_rows: int | None = None) -> FitResult:
     """Fit the depth law, the reversal and the planning figures.
 
     Args:
@@ -96,6 +97,8 @@ def fit(data: Any, *, bootstrap: int = 400, seed: int = 0, save_fraction: float 
         bootstrap: bootstrap replicates for the intervals.
         seed: seed of the bootstrap.
         save_fraction: a layer is worth adding while it saves at least this fraction of T.
+        target_width, target_rows: the job to plan for; with runs at two or more proxy sizes
+            (`width`, `train_rows` columns) `result.transfer.target` carries the law to it.
 
     Returns:
         The fit, equal to what `depthplan fit` writes to fit.json for the same data. Nothing is
@@ -115,8 +118,9 @@ def fit(data: Any, *, bootstrap: int = 400, seed: int = 0, save_fraction: float 
     from .fitting.assemble import fit_loaded
 
     runs, source, kind, info = _runs_of(data)
-    result = fit_loaded(runs, source=source, kind=kind, info=info,
-                        save_fraction=save_fraction, n_boot=bootstrap, seed=seed)
+    target = {"width": target_width, "train_rows": target_rows}
+    result = fit_loaded(runs, source=source, kind=kind, info=info, save_fraction=save_fraction,
+                        n_boot=bootstrap, seed=seed, target=target if any(target.values()) else None)
     return FitResult.from_dict(result)
 
 
