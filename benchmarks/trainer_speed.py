@@ -18,6 +18,8 @@ FLOPs counted per seed-update: 2 per multiply-add of every weight matrix, for th
 forward pass, the weight gradient and the gradient passed down (none below the
 first layer), plus the evaluation's forward pass spread over `eval_every` updates.
 MLPClassifier evaluates nothing between epochs, so its count has no evaluation share.
+Then a width axis (32, 64, 128, 256 at K = 4): depthplan against the plain loop, with the
+fraction of the matmul peak (wider proxies are where a transfer sweep spends its time).
 
 Part 2, end to end. The demo sweep (`configs/demo.yaml`) run by `run_sweep` (storage,
 export and all) against the same runs done by the plain loop, each seed stopping at
@@ -101,30 +103,30 @@ def matmul_gflops(n: int = 2048, repeats: int = 5) -> float:
 
 # --------------------------------------------------------------------------- part 1: throughput
 
-def flops_per_update(n_in: int, depth: int, n_out: int, n_rows: int, with_eval: bool) -> float:
+def flops_per_update(n_in: int, depth: int, n_out: int, n_rows: int, with_eval: bool, width: int = WIDTH) -> float:
     """Matrix-multiply FLOPs of one seed-update (see the module docstring)."""
-    macs = sum(i * o for i, o in layer_sizes(n_in, (WIDTH,) * depth, n_out))
-    train = 2 * BATCH * (3 * macs - n_in * WIDTH)
+    macs = sum(i * o for i, o in layer_sizes(n_in, (width,) * depth, n_out))
+    train = 2 * BATCH * (3 * macs - n_in * width)
     return train + (2 * n_rows * macs / EVAL_EVERY if with_eval else 0.0)
 
 
-def time_depthplan(data: Dataset, depth: int, n_updates: int) -> float:
+def time_depthplan(data: Dataset, depth: int, n_updates: int, width: int = WIDTH) -> float:
     """Seed-updates per second of `train_cell` on all seeds at once."""
     spec = CellSpec(depth=depth, seeds=tuple(range(N_SEEDS)), learning_rate=LR)
     train = TrainConfig(learning_rate=(LR,), batch_size=BATCH, max_updates=n_updates, eval_every=EVAL_EVERY,
                         converge_when=ConvergeConfig(train_loss_below=1e-12))   # nobody stops early
     probes = ProbeConfig(displacement=False, snr=False)
     t = time.perf_counter()
-    runs = train_cell(spec, ModelConfig(width=WIDTH, activation="tanh"), train, probes, data)
+    runs = train_cell(spec, ModelConfig(width=width, activation="tanh"), train, probes, data)
     return sum(r.iterations for r in runs) / (time.perf_counter() - t)
 
 
-def time_plain(data: Dataset, depth: int, n_updates: int, seeds: tuple[int, ...]) -> float:
+def time_plain(data: Dataset, depth: int, n_updates: int, seeds: tuple[int, ...], width: int = WIDTH) -> float:
     """Seed-updates per second of the plain per-seed PyTorch loop."""
     spec = CellSpec(depth=depth, seeds=seeds, learning_rate=LR)
     train = TrainConfig(learning_rate=(LR,), batch_size=BATCH, max_updates=n_updates, eval_every=EVAL_EVERY)
     t = time.perf_counter()
-    train_plain(spec, ModelConfig(width=WIDTH, activation="tanh"), train, data)
+    train_plain(spec, ModelConfig(width=width, activation="tanh"), train, data)
     return len(seeds) * n_updates / (time.perf_counter() - t)
 
 
@@ -174,6 +176,36 @@ def throughput(data: Dataset, plan: Plan, peak: float) -> dict[int, float]:
             if name == "depthplan":
                 ratios[depth] = ratio
     return ratios
+
+
+WIDTHS = (32, 64, 128, 256)
+WIDTH_DEPTH = 4
+
+
+def width_axis(data: Dataset, plan: Plan, peak: float) -> dict[int, float]:
+    """Throughput against width at K = 4 (the proxies a transfer sweep trains): depthplan and the plain
+    loop interleaved round by round; returns depthplan's fraction of the matmul peak per width."""
+    n_in, n_out, n_rows = data.n_features, data.n_classes, len(data.y_train)
+    n_updates = max(2 * EVAL_EVERY, plan.n_updates // 4)
+    print(f"\nWidth axis at K={WIDTH_DEPTH} ({N_SEEDS} seeds x {n_updates} updates for depthplan, "
+          f"{plan.plain_seeds} seeds per round for the plain loop, {plan.rounds} rounds)")
+    print(f"  {'width':>5} {'depthplan seed-updates/s':>25} {'vs plain loop':>14} {'GFLOP/s':>8} {'of matmul peak':>15}")
+    fractions = {}
+    for width in WIDTHS:
+        time_depthplan(data, WIDTH_DEPTH, 2 * EVAL_EVERY, width)           # warm-up, not timed
+        ours, plain = [], []
+        for r in range(plan.rounds):
+            seeds = tuple(range(r * plan.plain_seeds, (r + 1) * plan.plain_seeds))
+            jobs = [lambda: ours.append(time_depthplan(data, WIDTH_DEPTH, n_updates, width)),
+                    lambda: plain.append(time_plain(data, WIDTH_DEPTH, n_updates, seeds, width))]
+            for job in (jobs if r % 2 == 0 else jobs[::-1]):
+                job()
+        ratio = statistics.median(a / b for a, b in zip(ours, plain))
+        rate = statistics.median(ours)
+        gflops = rate * flops_per_update(n_in, WIDTH_DEPTH, n_out, n_rows, True, width) / 1e9
+        fractions[width] = gflops / peak
+        print(f"  {width:>5} {rate:>25,.0f} {ratio:>13.1f}x {gflops:>8.1f} {gflops / peak:>14.1%}")
+    return fractions
 
 
 # --------------------------------------------------------------------------- part 2: the demo sweep
@@ -249,6 +281,7 @@ def main(argv: list[str] | None = None) -> int:
     data = load_dataset(DataConfig(source="digits"))
     t = time.perf_counter()
     ratios = throughput(data, plan, peak)
+    width_axis(data, plan, peak)
     print(f"\n(part 1 took {time.perf_counter() - t:.0f} s)")
     end_to_end(args.quick)
     print(f"speedup_vs_plain_loop K=8: {ratios[8]:.1f}")
