@@ -69,6 +69,7 @@ from .depthlaw import (
     _with_alpha,
     summarize_depths,
 )
+from .cost import COST_BASES, network_of
 from .diffusion import (
     diffusion_summary,
 )
@@ -76,11 +77,12 @@ from .estimators import (
     _tobit_batch,
     fit_two_term,
 )
-from .inputs import eval_interval, load_runs, read_sweep_info
+from .inputs import eval_interval, load_runs, network_from_config, read_sweep_info
 from .planning import (
     _curve_block,
     _planning_block,
 )
+from .rates import rate_effect, rate_effect_words, single_rate_warning
 from .summary import _describe, _group_warnings, _plural
 
 __all__ = ["SCHEMA", "fit_runs", "fit_path", "default_json_path", "power_law_curve"]
@@ -92,8 +94,11 @@ SCHEMA = "depthplan-fit/1"
 # ---------------------------------------------------------------- one group of runs
 
 def _fit_group(runs: list[RunResult], *, save_fraction: float, n_boot: int, seed: int,
-               eval_every: int | None, source: str) -> dict[str, Any]:
-    """The full fit of one learning-rate group (everything but the rate comparison)."""
+               eval_every: int | None, source: str,
+               cost: dict[str, Any] | None = None) -> dict[str, Any]:
+    """The full fit of one learning-rate group (everything but the rate comparison); `cost`
+    is {basis, network, seconds_are_proxy} for the compute-optimal depth (`network` None: the
+    group's runs' own record, `cost.network_of`)."""
     name = source or "the runs"
     per_depth = summarize_depths(runs)
     swept = [row["depth"] for row in per_depth]
@@ -137,8 +142,10 @@ def _fit_group(runs: list[RunResult], *, save_fraction: float, n_boot: int, seed
         model, point = "power_law", np.array([pl["intercept"], pl["slope"]])
         draws, k_lo, k_hi = pl_draws, span[0], span[-1]
     rise_after = span[-1] if reversal["rise_suspected"] else None
+    cost = dict(cost or {})
+    cost["network"] = network_of(runs) or cost.get("network")
     planning = _planning_block(model, point, draws, depths, per_depth, save_fraction, gain,
-                               rise_after)
+                               rise_after, cost)
     diffusion = diffusion_summary(runs)
     if diffusion is not None:
         diffusion["alpha"] = pl["alpha"]
@@ -146,7 +153,7 @@ def _fit_group(runs: list[RunResult], *, save_fraction: float, n_boot: int, seed
            "per_depth": per_depth, "power_law": pl, "reversal": reversal,
            "planning": planning, "diffusion": diffusion,
            "curve": _curve_block(model, point, draws, k_lo, k_hi),
-           "eval_every": eval_every,
+           "eval_every": eval_every, "rate_effect": rate_effect(runs, pl, per_depth),
            "bootstrap": {"n_boot": n_boot, "seed": seed, "method": pl["ci_method"],
                          "n_failed": pl["n_boot_failed"]}}
     fit["warnings"] = _group_warnings(fit, d, eval_every)
@@ -208,15 +215,22 @@ def _lr_interaction(fits: list[dict[str, Any]], groups: dict[tuple[str, float | 
     message = "depth and learning rate interact: the slope is " + ", ".join(parts)
     if lr_exponent is not None:
         message += f"; across fixed rates T scales as lr^{lr_exponent:.2f}"
+    effects = [f["rate_effect"] for f in fits if f.get("rate_effect")]
+    if effects:
+        message += "; " + "; ".join(rate_effect_words(e) for e in effects)
     message += (". A fixed-rate slope partly measures the rate; plan with the slope of the "
-                "rate policy the big run will use")
+                "rate policy the big run will use"
+                + (" (the headline figures are for the rate tuned per depth)"
+                   if primary[0] == "tuned" else ""))
     return {"primary": {"lr_mode": primary[0], "learning_rate": primary[1]},
             "slopes": slopes, "lr_exponent": lr_exponent, "message": message}
 
 
-def _check_fit_options(save_fraction: float, n_boot: int) -> None:
-    """Raise `ConfigError` when save_fraction or n_boot is out of range."""
+def _check_fit_options(save_fraction: float, n_boot: int, cost: str = "flops") -> None:
+    """Raise `ConfigError` when save_fraction, n_boot or the cost basis is out of range."""
     from ..errors import ConfigError
+    if cost not in COST_BASES:
+        raise ConfigError(f"cost: must be one of {'|'.join(COST_BASES)}; got {cost!r}")
     if not 0 < save_fraction < 1:
         raise ConfigError(f"save_fraction: must be between 0 and 1; got {save_fraction}")
     if n_boot < 20:
@@ -241,7 +255,9 @@ def _fit_by_rate(groups: dict[tuple[str, float | None], list[RunResult]], primar
 
 
 def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int = 400,
-             seed: int = 0, eval_every: int | None = None, source: str = "") -> dict[str, Any]:
+             seed: int = 0, eval_every: int | None = None, source: str = "",
+             cost: str = "flops", network: dict[str, Any] | None = None,
+             seconds_are_proxy: bool = True) -> dict[str, Any]:
     """Fit the depth law, the reversal and the planning figures to measured runs.
 
     Args:
@@ -255,19 +271,28 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
         eval_every: evaluation interval, for the coarse-evaluation warning
             (default: read from the runs).
         source: name of the input, used in messages and stored in the result.
+        cost: basis of the compute-optimal depth's cost per update: "flops" (the analytic
+            count of the network as built, `depthplan.fitting.cost.update_flops`) or
+            "seconds" (the measured seconds per update, fitted as a line in K).
+        network: the network's shape when the runs do not record it ({n_inputs, n_classes,
+            width or widths, batch_size}, see `depthplan.fitting.cost`).
+        seconds_are_proxy: the runs' seconds are this machine's timings of proxies (a
+            results folder), not used unless `cost="seconds"`; False for a user's timings of
+            their own jobs (a table), which serve when the shape is unknown.
 
     Returns:
         The content of fit.json (schema in the module docstring and
         docs/fit-json.md), JSON-ready, with no NaN. With several learning-rate
-        groups the top level describes the primary group (the fixed-rate group
-        with most runs, else the tuned group) and `by_learning_rate` holds a
-        full fit per group.
+        groups the top level describes the primary group (the group with the
+        rate tuned per depth when there is one, else the fixed-rate group with
+        most runs; `records.primary_group`) and `by_learning_rate` holds a full
+        fit per group.
 
     Raises:
         DataError: fewer than three depths, no converged runs at two depths, or
             no runs at all. ConfigError: save_fraction or n_boot out of range.
     """
-    _check_fit_options(save_fraction, n_boot)
+    _check_fit_options(save_fraction, n_boot, cost)
     # trials of a learning-rate search measure the search, not the depth law
     known = [r for r in runs if r.status in STATUSES and r.lr_mode != "tuning"]
     if not known:
@@ -276,7 +301,8 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
         eval_every = eval_interval(known)
     groups = group_runs(known)
     primary = primary_group(groups)
-    kw = dict(save_fraction=save_fraction, n_boot=n_boot, seed=seed, eval_every=eval_every)
+    kw = dict(save_fraction=save_fraction, n_boot=n_boot, seed=seed, eval_every=eval_every,
+              cost={"basis": cost, "network": network, "seconds_are_proxy": seconds_are_proxy})
     main = {"group": _group_label(primary, groups[primary]),
             **_fit_group(groups[primary], source=source, **kw)}
     by_rate, interaction = [], None
@@ -284,6 +310,8 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
         by_rate = _fit_by_rate(groups, primary, main, source, kw)
         interaction = _lr_interaction(by_rate, groups, primary)
     notes = list(main["warnings"])
+    if len(groups) == 1 and single_rate_warning(main["rate_effect"]):
+        notes.append(single_rate_warning(main["rate_effect"]))
     if len(known) < len(runs):
         notes.insert(0, f"{_plural(len(runs) - len(known), 'run')} failed, unfinished or from "
                         "a learning-rate search left out")
@@ -319,7 +347,10 @@ def fit_path(path: Path, json_out: Path | None = None, **kw: Any) -> tuple[dict[
     Args:
         path: results folder or CSV table (see `depthplan.tables.load_runs`).
         json_out: where to write; default `default_json_path(path)`.
-        **kw: passed to `fit_runs` (save_fraction, n_boot, seed, eval_every).
+        **kw: passed to `fit_runs` (save_fraction, n_boot, seed, eval_every, cost). A
+            table's seconds count as the user's own timings (`seconds_are_proxy` False); a
+            folder whose runs do not record their shape takes it from its config.yaml when
+            that fixes it (`inputs.network_from_config`).
 
     Returns:
         (the fit, the path written). The file is replaced atomically.
@@ -332,6 +363,9 @@ def fit_path(path: Path, json_out: Path | None = None, **kw: Any) -> tuple[dict[
     info = read_sweep_info(path) if path.is_dir() else {}
     kw.setdefault("eval_every", eval_interval(runs, info))
     kw.setdefault("source", str(path))
+    kw.setdefault("seconds_are_proxy", path.is_dir())
+    if path.is_dir() and network_of(runs) is None:
+        kw.setdefault("network", network_from_config(path))
     fit = fit_runs(runs, **kw)
     fit["input"] = _clean({"kind": "results_folder" if path.is_dir() else "table",
                            "sweep_name": info.get("name"), "max_updates": info.get("max_updates")})

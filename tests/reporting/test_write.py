@@ -319,7 +319,10 @@ def test_rate_groups_tuning_and_rounds_are_shown(rates_report):
     assert "fixed rate 0.02" in text and "rate tuned per depth" in text
     assert "round 2: reversal interval narrow enough" in text
     assert "Tuning trials" in text
-    assert "> 12,000" in text           # K = 1 at the fixed rate 0.02: every run hit the budget
+    # the headline and the per-depth table follow the tuned rate (records.primary_group)
+    assert fit["group"]["lr_mode"] == "tuned"
+    assert "the answer at the top is for the rate tuned per depth" in text
+    assert "the answer at the top uses the tuned rate" in text
 
 
 def test_scaling_plot_draws_censored_and_diverged_runs_as_such(rates_report):
