@@ -9,8 +9,8 @@ plain meaning:
 
     falling   s < -1: depth cuts updates faster than a rate multiplied by K would, so it does
               more than multiply the rate
-    flat      s near -1 (its interval holds -1): depth acts like a rate multiplier; a larger
-              rate at fewer layers might buy the same gain
+    flat      s near -1 (its interval holds -1, or |s + 1| <= FLAT_EXPONENT): depth acts like
+              a rate multiplier; a larger rate at fewer layers might buy the same gain
     rising    s > -1: depth cuts updates less than a rate multiplied by K would; the deeper nets
               do not turn their larger effective step into proportionally fewer updates
 """
@@ -28,6 +28,11 @@ MEANINGS = {
     "rising": "depth cuts updates less than multiplying the rate by K would: the deeper nets do "
               "not turn their larger effective step into proportionally fewer updates",
 }
+
+#: A trend of T·lr·K counts as falling or rising only when its exponent's interval excludes 0
+#: and the exponent itself is beyond this size (0.1: over a tenfold depth range, a change of
+#: more than about a quarter); smaller trends are called level.
+FLAT_EXPONENT = 0.1
 
 #: Where the remedy lives in the sweep file (README, "Tuned learning rates").
 TUNE_KEY = "a `train.learning_rate` block with `low`, `high` and `trials`"
@@ -62,9 +67,9 @@ def _effect(mode: str | None, lr: float | None, power_law: dict[str, Any],
         return None
     s, ci = power_law["slope"], power_law.get("slope_ci") or [None, None]
     exp_ci = [None if c is None else c + 1.0 for c in ci]
-    if exp_ci[1] is not None and exp_ci[1] < 0:
+    if exp_ci[1] is not None and exp_ci[1] < 0 and s + 1.0 < -FLAT_EXPONENT:
         direction = "falling"
-    elif exp_ci[0] is not None and exp_ci[0] > 0:
+    elif exp_ci[0] is not None and exp_ci[0] > 0 and s + 1.0 > FLAT_EXPONENT:
         direction = "rising"
     else:
         direction = "flat"

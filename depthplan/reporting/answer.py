@@ -330,7 +330,9 @@ def _accuracy_blocks(fit: dict[str, Any], w: Words) -> list[Block]:
     if not check.get("clearly_below"):
         return []
     p = "planning.accuracy_check."
-    return [("p", f"**Accuracy warning.** At K = {w.num(p + 'depth', 'd')} the validation accuracy "
+    near = ("" if check["depth"] == fit["planning"]["recommended_depth"] else
+            f" (the swept depth nearest the planned {w.num('planning.recommended_depth', 'd')})")
+    return [("p", f"**Accuracy warning.** At K = {w.num(p + 'depth', 'd')}{near} the validation accuracy "
                   f"is {w.num(p + 'accuracy', '.1f@100')} % (median over seeds), clearly below the "
                   f"{w.num(p + 'best_accuracy', '.1f@100')} % of K = {w.num(p + 'best_depth', 'd')}: "
                   "their spreads over seeds do not overlap. Fewer updates to converge do not make "

@@ -157,8 +157,8 @@ def depth_table_blocks(inp: ReportInputs, w: Words) -> list[Block]:
                   "censored (a quartile: a quarter); otherwise T is more than the budget shown. "
                   "MFLOP per update is the analytic count of the network as built (forward and "
                   "backward matrix products); seconds to converge is the median over converged runs "
-                  "of updates × this machine's seconds per update. Validation accuracy spreads are "
-                  "quartiles with four seeds or more, else the lowest and highest seed. Probe "
+                  "of updates × this machine's seconds per update. Validation accuracy: median over "
+                  "seeds, with the lowest and highest seed in brackets. Probe "
                   "columns are medians over layers of the per-layer medians over seeds.", "small"),
             ("table", [header[j] for j in keep], [[r[j] for j in keep] for r in rows], "numbers")]
 

@@ -276,6 +276,29 @@ def test_stored_folder_report_answers_first_and_gives_provenance(folder_report):
     assert {"scaling", "cost", "loss", "dynamics"} <= names
 
 
+def test_stored_folder_report_warns_on_accuracy_and_states_its_cost_basis(folder_report):
+    # The fixture (cut from a real demo sweep) plans a depth near 10 whose validation accuracy
+    # (K = 12: about 74.5 %) lies below every seed of K = 2 (about 78-80 %).
+    _, paths = folder_report
+    fit = json.loads(paths["fit"].read_text())
+    check = fit["planning"]["accuracy_check"]
+    assert check["clearly_below"] and "clearly lower validation accuracy" in fit["warnings"][0]
+    md = paths["md"].read_text(encoding="utf-8")
+    answer = md.split("## The answer", 1)[1].split("\n\n")
+    lead = [b.strip().lstrip("> ") for b in answer if b.strip()][:3]
+    assert lead[0].startswith("**Plan for") and lead[1].startswith("**Accuracy warning.**")
+    assert f"K = {check['best_depth']}" in lead[1]
+    # the fixture's runs predate the recorded shape: its config.yaml gives it (synthetic data)
+    assert fit["planning"]["cost_basis"] == "flops"
+    assert "MFLOP per hidden layer" in md and "64 inputs, hidden width 32, 4 classes, batch 32" in md
+    assert "MFLOP per update" in md and "validation accuracy: median (spread over seeds)" in md
+    # one fixed rate: the caution says which way T·lr·K went, with the tuning block to fix it
+    assert "T·lr·K stays roughly constant" not in md
+    change = {"flat": "stays about level", "falling": "falls", "rising": "rises"}
+    assert f"T·lr·K {change[fit['rate_effect']['direction']]}" in md
+    assert "`train.learning_rate` block" in md
+
+
 def test_stored_folder_report_shows_the_snr_drop_per_depth(folder_report):
     _, paths = folder_report
     by_depth = json.loads(paths["fit"].read_text())["diffusion"]["by_depth"]
