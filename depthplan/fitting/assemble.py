@@ -15,6 +15,9 @@ re-exports every public name (`__all__`):
     depthlaw     summarize_depths, bootstrap draws, the power-law and reversal blocks
     planning     log_t_curve, last_depth_worth_adding, compute_optimal_depth,
                  fit_cost_model, and the planning and curve blocks
+    cost         the cost of one update: FLOP count of the network as built, or seconds
+    accuracy     validation accuracy per depth and the guard on the planned depth
+    rates        the effective-rate effect of a fixed rate (T·lr·K across K) in words
     diffusion    the probe measures growth_exponent, transition_step, snr_drop_db,
                  and diffusion_summary
     summary      the warnings of fit.json and format_summary, the text the CLI prints
@@ -29,7 +32,8 @@ Numbers are JSON numbers, null where undefined; never NaN.
     depth_gain        true when the slope and its intervals lie below 0
     depths_swept, n_runs, eval_every
     per_depth[]       {depth, runs, converged, censored, diverged, median, q25, q75,
-                       median_note, quartile_note, budget, seconds_per_update}
+                       median_note, quartile_note, budget, seconds_per_update,
+                       validation_accuracy, validation_accuracy_lo, _hi, _spread}
     power_law         {slope, slope_se, slope_ci, slope_ci_analytic, intercept, cov,
                        sigma, alpha, alpha_ci, r2, method, depths_used, n_runs,
                        n_censored, without_shallowest{...}}
@@ -39,10 +43,12 @@ Numbers are JSON numbers, null where undefined; never NaN.
                        rise_suspected, note}
     planning          {save_fraction, last_depth_worth_adding{depth, ci, extrapolated},
                        compute_optimal_depth{depth, ci, extrapolated, cost_model, note},
-                       recommended_depth, recommended_basis}
+                       recommended_depth, recommended_basis, recommended_extrapolated,
+                       cost_basis: flops|seconds|none, accuracy_check{...}}
     diffusion         null, or {n_runs, layers[], late_exponent_median,
                        transition_step_median, snr_drop_db_median, alpha}
     curve             {model, depths, median, lo, hi}: fitted T and its 95 % band
+    rate_effect       null, or {learning_rate, exponent, exponent_ci, direction, fold, ...}
     by_learning_rate  [] or one full fit (without this field) per rate group
     lr_interaction    null, or {primary, slopes[], lr_exponent, message}
     bootstrap         {n_boot, seed, method, n_failed}

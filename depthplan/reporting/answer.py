@@ -14,7 +14,7 @@ from typing import Any
 
 import numpy as np
 
-from ..fitting.cost import cost_basis_of, network_words
+from ..fitting.cost import cost_basis_of, cost_label, network_words
 from ..fitting.planning import total_cost_curve
 from ..fitting.rates import TUNE_KEY, rate_effect_of, rate_effect_words
 from . import figures as F
@@ -48,7 +48,8 @@ def _why(fit: dict[str, Any], w: Words) -> str:
         return "It is both the compute-optimal depth and the last depth worth adding." + past
     if rec == opt:
         return ("It is the compute-optimal depth: there the fitted number of updates times the "
-                "measured cost of one update is lowest"
+                f"cost of one update ({cost_label(plan['compute_optimal_depth'].get('cost_model'))}) "
+                "is lowest"
                 + (f", and it comes before the last depth worth adding (K = "
                    f"{w.num('planning.last_depth_worth_adding.depth', 'd')})." if worth else ".") + past)
     if rec == worth:
