@@ -93,7 +93,7 @@ def rate_effect_words(effect: dict[str, Any]) -> str:
     if fold is None:
         change = {"falling": "falls", "flat": "stays about level", "rising": "rises"}[effect["direction"]]
     elif effect["direction"] == "flat":
-        change = f"stays about level (within its interval; {fold:.2f}-fold between the ends)"
+        change = f"stays about level ({fold:.2f}-fold from end to end)"
     elif fold >= 1:
         change = f"rises {fold:.1f}-fold" if effect["direction"] == "rising" else \
             f"changes {fold:.2f}-fold between the ends although its fitted trend falls"

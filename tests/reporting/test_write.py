@@ -391,6 +391,21 @@ def test_fit_is_reused_while_fresh_and_refitted_when_stale(tmp_path):
     assert json.loads(fit_file.read_text())["schema"] == "depthplan-fit/1"
 
 
+def test_a_refit_keeps_the_cost_basis_the_stored_fit_asked_for(tmp_path):
+    folder = tmp_path / "demo"
+    shutil.copytree(FIXTURE, folder)
+    fit_file = folder / "fit.json"
+    assert main(["fit", str(folder), "--cost", "seconds", "--bootstrap", "20"]) == 0
+    assert json.loads(fit_file.read_text())["planning"]["cost_basis"] == "seconds"
+    later = time.time() + 5
+    os.utime(folder / "runs.jsonl", (later, later))
+    fit, note = ensure_fit(folder, fit_file, n_boot=20)
+    assert note.startswith("fitted now") and fit["planning"]["cost_basis"] == "seconds"
+    fit_file.unlink()
+    fit, _ = ensure_fit(folder, fit_file, n_boot=20)
+    assert fit["planning"]["cost_basis"] == "flops"              # the default
+
+
 def test_report_command_writes_beside_a_table_and_says_where(tmp_path, capsys):
     table = write_table(tmp_path / "jobs.csv")
     assert main(["report", str(table), "--out", str(tmp_path / "rep")]) == 0
