@@ -85,7 +85,7 @@ def _runs_of(data: Any) -> tuple[list, str, str, dict[str, Any]]:
                     f"columns, got {type(data).__name__}")
 
 
-def fit(data: Any, *, bootstrap: int = 400, seed: int = 0, save_fraction: float = 0.05,
+def fit(data: Any, *, bootstrap: int = 400, seed: int = 0, save_fraction: float = 0.05, cost: str = "flops",
         target_width: int | None = None, target_rows: int | None = None) -> FitResult:
     """Fit the depth law, the reversal and the planning figures.
 
@@ -97,6 +97,9 @@ def fit(data: Any, *, bootstrap: int = 400, seed: int = 0, save_fraction: float 
         bootstrap: bootstrap replicates for the intervals.
         seed: seed of the bootstrap.
         save_fraction: a layer is worth adding while it saves at least this fraction of T.
+        cost: the cost of one update for the compute-optimal depth: "flops" (counted for the
+            network as built) or "seconds" (this machine's measured seconds per update), as
+            `depthplan fit --cost`.
         target_width, target_rows: the job to plan for; with runs at two or more proxy sizes
             (`width`, `train_rows` columns) `result.transfer.target` carries the law to it.
 
@@ -120,7 +123,8 @@ def fit(data: Any, *, bootstrap: int = 400, seed: int = 0, save_fraction: float 
     runs, source, kind, info = _runs_of(data)
     target = {"width": target_width, "train_rows": target_rows}
     result = fit_loaded(runs, source=source, kind=kind, info=info, save_fraction=save_fraction,
-                        n_boot=bootstrap, seed=seed, target=target if any(target.values()) else None)
+                        n_boot=bootstrap, seed=seed, cost=cost, target=target if any(target.values()) else None,
+                        folder=Path(data) if kind == "results_folder" else None)
     return FitResult.from_dict(result)
 
 

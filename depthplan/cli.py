@@ -109,8 +109,26 @@ def summary_url(cfg: object, args: argparse.Namespace) -> str:
     return resolve_url(args.storage, cfg.output.storage, output_folder(cfg, args.out))  # type: ignore[attr-defined]
 
 
+def _print_plan(fit: dict | None, folder: Path) -> None:
+    """The depth to plan for, its basis and range (the first lines `depthplan fit` prints)."""
+    from .errors import DataError
+    from .fitting import fit_path
+    from .fitting.summary import headline_lines
+
+    if fit is None:
+        try:
+            fit, written = fit_path(folder)
+        except DataError as exc:
+            print(f"No depth to plan for yet: {exc}")
+            return
+        print(f"fit written to {written}")
+    print("\n".join(headline_lines(fit)))
+
+
 def _cmd_run(args: argparse.Namespace) -> int:
-    _train_sweep(Path(args.config), args)
+    folder = _train_sweep(Path(args.config), args)
+    if not getattr(args, "plan_only", False):
+        _print_plan(None, folder)
     return 0
 
 
@@ -130,7 +148,7 @@ def _cmd_fit(args: argparse.Namespace) -> int:
 
     target = {"width": args.target_width, "train_rows": args.target_rows}
     fit, written = fit_path(Path(args.path), Path(args.json) if args.json else None,
-                            save_fraction=args.save_fraction, n_boot=args.bootstrap,
+                            save_fraction=args.save_fraction, n_boot=args.bootstrap, cost=args.cost,
                             target=target if any(target.values()) else None)
     print(format_summary(fit))
     print(f"fit written to {written}")
@@ -150,9 +168,12 @@ def _cmd_demo(args: argparse.Namespace) -> int:
         raise ConfigError(f"the demo sweep {DEMO_CONFIG} is missing; run from a checkout of depthplan")
     from .reporting.write import write_report
 
+    import json
+
     folder = _train_sweep(DEMO_CONFIG, args)
     paths = write_report(folder, None)
     print(f"demo report: {paths['html']}")
+    _print_plan(json.loads(Path(paths["fit"]).read_text(encoding="utf-8")), folder)
     return 0
 
 
@@ -229,6 +250,11 @@ def build_parser() -> argparse.ArgumentParser:
                     help="hidden width of the job to plan for (needs runs at two or more proxy widths)")
     sp.add_argument("--target-rows", type=_size, metavar="N",
                     help="training rows of the job to plan for (needs runs at two or more proxy row counts)")
+    # the values of depthplan.fitting.cost.COST_BASES (kept literal so that --help imports no scipy)
+    sp.add_argument("--cost", choices=("flops", "seconds"), default="flops",
+                    help="cost of one update for the compute-optimal depth: the FLOP count of the "
+                         "network as built (default; a table without the network's shape uses its "
+                         "seconds_per_update column), or this machine's measured seconds per update")
     sp = add("report", _cmd_report, "write the hand-over report (Markdown + self-contained HTML)")
     sp.add_argument("path", metavar="PATH")
     sp.add_argument("--out", metavar="DIR", help="report folder (default: PATH's folder)")

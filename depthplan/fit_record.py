@@ -132,6 +132,10 @@ class DepthRow(Record):
     quartile_note: str = _absent()
     budget: int | None = _absent()
     seconds_per_update: float | None = _absent()
+    validation_accuracy: float | None = _absent()
+    validation_accuracy_lo: float | None = _absent()
+    validation_accuracy_hi: float | None = _absent()
+    validation_accuracy_spread: str | None = _absent()
 
 
 @dataclass(frozen=True)
@@ -184,7 +188,7 @@ class PlannedDepth(Record):
     depth: float | None = _absent()
     ci: list[float | None] | None = _absent()
     extrapolated: bool = _absent()
-    cost_model: dict[str, float] | None = _absent()
+    cost_model: dict[str, Any] | None = _absent()
     note: str = _absent()
 
 
@@ -197,6 +201,8 @@ class Planning(Record):
     recommended_depth: int | None = _absent()
     recommended_basis: str = _absent()
     recommended_extrapolated: bool = _absent()
+    cost_basis: str = _absent()
+    accuracy_check: dict[str, Any] = _absent()
 
 
 @dataclass(frozen=True)
@@ -327,6 +333,7 @@ class FitGroup(Record):
     diffusion: Diffusion | None = _absent()
     curve: Curve = _absent()
     eval_every: int | None = _absent()
+    rate_effect: dict[str, Any] | None = _absent()
     bootstrap: Bootstrap = _absent()
     warnings: list[str] = _absent()
 

@@ -86,8 +86,11 @@ def group_runs(runs: Sequence[Any]) -> dict[RateGroup, list[Any]]:
 
 
 def primary_group(groups: Mapping[RateGroup, Sequence[Any]]) -> RateGroup:
-    """The curve the headline describes: the fixed-rate curve with most runs, else the first listed."""
+    """The curve the headline describes: the rate tuned per depth when there is one (a fixed rate's
+    slope includes the rate effect), else the fixed-rate curve with most runs, else the first."""
     keys = list(groups)
+    if (RateMode.TUNED.value, None) in groups:
+        return (RateMode.TUNED.value, None)
     fixed = [k for k in keys if k[0] == RateMode.FIXED.value]
     return max(fixed, key=lambda k: len(groups[k])) if fixed else keys[0]
 

@@ -40,6 +40,14 @@ def test_tiny_sweep_through_the_cli(tiny_config: Path, tmp_path: Path, capsys: p
     assert main(["run", str(tiny_config), "--out", str(tmp_path / "r"), "-q"]) == 0
     out = capsys.readouterr().out
     assert "4 seed runs stored" in out and "median T" in out
+    # run ends with the depth to plan for, or says why there is none (two depths: no law)
+    assert "No depth to plan for yet:" in out and "at least three" in out
+    # each run records its network's shape for the FLOP count: load_digits has 64 features and
+    # 10 classes (scikit-learn's documentation); width 8 and batch 32 come from the sweep file
+    import json
+    first = json.loads((tmp_path / "r" / "runs.jsonl").read_text().splitlines()[0])
+    assert first["extra"]["network"] == {"n_inputs": 64, "n_classes": 10,
+                                         "widths": [8] * first["depth"], "batch_size": 32}
 
 
 def _modules_after(code: str) -> set[str]:
@@ -84,3 +92,31 @@ def test_fit_refuses_a_bad_table_in_one_line(tmp_path: Path, capsys: pytest.Capt
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and message in err and "timings.csv" in err
     assert not (tmp_path / "timings.fit.json").exists()
+
+
+def test_run_and_demo_end_with_the_lines_fit_starts_with(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
+    import json
+    import math
+
+    import numpy as np
+
+    from depthplan.cli import _print_plan
+    from depthplan.fitting.summary import format_summary, headline_lines
+    from depthplan.records import RunResult, write_runs_jsonl
+
+    # invented runs: T = 8000 K^-0.7 with 3 % noise at five depths, three seeds
+    rng = np.random.default_rng(4)
+    runs = [RunResult(depth=k, width=16, seed=s, learning_rate=0.05, status="converged",
+                      iterations=int(8000 * k ** -0.7 * math.exp(rng.normal(0, 0.03))),
+                      wall_seconds=math.nan, seconds_per_update=math.nan, final_train_loss=0.1,
+                      final_train_accuracy=1.0, validation_accuracy=0.9, n_params=0,
+                      extra={"network": {"n_inputs": 100, "n_classes": 5, "batch_size": 16,
+                                         "widths": [16] * k}})
+            for k in (1, 2, 4, 8, 16) for s in range(3)]
+    write_runs_jsonl(runs, tmp_path / "runs.jsonl")
+    _print_plan(None, tmp_path)
+    out = capsys.readouterr().out
+    fit = json.loads((tmp_path / "fit.json").read_text())
+    head = headline_lines(fit)
+    assert out.splitlines()[1:] == head and head[0].startswith("Recommended depth:")
+    assert format_summary(fit).splitlines()[1:1 + len(head)] == head     # the same lines as `fit`

@@ -15,6 +15,9 @@ re-exports every public name (`__all__`):
     depthlaw     summarize_depths, bootstrap draws, the power-law and reversal blocks
     planning     log_t_curve, last_depth_worth_adding, compute_optimal_depth,
                  fit_cost_model, and the planning and curve blocks
+    cost         the cost of one update: FLOP count of the network as built, or seconds
+    accuracy     validation accuracy per depth and the guard on the planned depth
+    rates        the effective-rate effect of a fixed rate (T·lr·K across K) in words
     diffusion    the probe measures growth_exponent, transition_step, snr_drop_db,
                  and diffusion_summary
     summary      the warnings of fit.json and format_summary, the text the CLI prints
@@ -29,7 +32,8 @@ Numbers are JSON numbers, null where undefined; never NaN.
     depth_gain        true when the slope and its intervals lie below 0
     depths_swept, n_runs, eval_every
     per_depth[]       {depth, runs, converged, censored, diverged, median, q25, q75,
-                       median_note, quartile_note, budget, seconds_per_update}
+                       median_note, quartile_note, budget, seconds_per_update,
+                       validation_accuracy, validation_accuracy_lo, _hi, _spread}
     power_law         {slope, slope_se, slope_ci, slope_ci_analytic, intercept, cov,
                        sigma, alpha, alpha_ci, r2, method, depths_used, n_runs,
                        n_censored, without_shallowest{...}}
@@ -39,10 +43,12 @@ Numbers are JSON numbers, null where undefined; never NaN.
                        rise_suspected, note}
     planning          {save_fraction, last_depth_worth_adding{depth, ci, extrapolated},
                        compute_optimal_depth{depth, ci, extrapolated, cost_model, note},
-                       recommended_depth, recommended_basis}
+                       recommended_depth, recommended_basis, recommended_extrapolated,
+                       cost_basis: flops|seconds|none, accuracy_check{...}}
     diffusion         null, or {n_runs, layers[], late_exponent_median,
                        transition_step_median, snr_drop_db_median, alpha}
     curve             {model, depths, median, lo, hi}: fitted T and its 95 % band
+    rate_effect       null, or {learning_rate, exponent, exponent_ci, direction, fold, ...}
     by_learning_rate  [] or one full fit (without this field) per rate group
     lr_interaction    null, or {primary, slopes[], lr_exponent, message}
     bootstrap         {n_boot, seed, method, n_failed}
@@ -69,6 +75,7 @@ from .depthlaw import (
     _with_alpha,
     summarize_depths,
 )
+from .cost import COST_BASES, network_of
 from .diffusion import (
     diffusion_summary,
 )
@@ -76,11 +83,12 @@ from .estimators import (
     _tobit_batch,
     fit_two_term,
 )
-from .inputs import eval_interval, load_runs, read_sweep_info
+from .inputs import eval_interval, load_runs, network_from_config, read_sweep_info
 from .planning import (
     _curve_block,
     _planning_block,
 )
+from .rates import rate_effect, rate_effect_words, single_rate_warning
 from .summary import _describe, _group_warnings, _plural
 from .transfer import fit_transfer, size_of, target_error
 
@@ -93,8 +101,11 @@ SCHEMA = "depthplan-fit/1"
 # ---------------------------------------------------------------- one group of runs
 
 def _fit_group(runs: list[RunResult], *, save_fraction: float, n_boot: int, seed: int,
-               eval_every: int | None, source: str) -> dict[str, Any]:
-    """The full fit of one learning-rate group (everything but the rate comparison)."""
+               eval_every: int | None, source: str,
+               cost: dict[str, Any] | None = None) -> dict[str, Any]:
+    """The full fit of one learning-rate group (everything but the rate comparison); `cost`
+    is {basis, network, seconds_are_proxy} for the compute-optimal depth (`network` None: the
+    group's runs' own record, `cost.network_of`)."""
     name = source or "the runs"
     per_depth = summarize_depths(runs)
     swept = [row["depth"] for row in per_depth]
@@ -138,8 +149,10 @@ def _fit_group(runs: list[RunResult], *, save_fraction: float, n_boot: int, seed
         model, point = "power_law", np.array([pl["intercept"], pl["slope"]])
         draws, k_lo, k_hi = pl_draws, span[0], span[-1]
     rise_after = span[-1] if reversal["rise_suspected"] else None
+    cost = dict(cost or {})
+    cost["network"] = network_of(runs) or cost.get("network")
     planning = _planning_block(model, point, draws, depths, per_depth, save_fraction, gain,
-                               rise_after)
+                               rise_after, cost)
     diffusion = diffusion_summary(runs)
     if diffusion is not None:
         diffusion["alpha"] = pl["alpha"]
@@ -147,7 +160,7 @@ def _fit_group(runs: list[RunResult], *, save_fraction: float, n_boot: int, seed
            "per_depth": per_depth, "power_law": pl, "reversal": reversal,
            "planning": planning, "diffusion": diffusion,
            "curve": _curve_block(model, point, draws, k_lo, k_hi),
-           "eval_every": eval_every,
+           "eval_every": eval_every, "rate_effect": rate_effect(runs, pl, per_depth),
            "bootstrap": {"n_boot": n_boot, "seed": seed, "method": pl["ci_method"],
                          "n_failed": pl["n_boot_failed"]}}
     fit["warnings"] = _group_warnings(fit, d, eval_every)
@@ -209,15 +222,22 @@ def _lr_interaction(fits: list[dict[str, Any]], groups: dict[tuple[str, float | 
     message = "depth and learning rate interact: the slope is " + ", ".join(parts)
     if lr_exponent is not None:
         message += f"; across fixed rates T scales as lr^{lr_exponent:.2f}"
+    effects = [f["rate_effect"] for f in fits if f.get("rate_effect")]
+    if effects:
+        message += "; " + "; ".join(rate_effect_words(e) for e in effects)
     message += (". A fixed-rate slope partly measures the rate; plan with the slope of the "
-                "rate policy the big run will use")
+                "rate policy the big run will use"
+                + (" (the headline figures are for the rate tuned per depth)"
+                   if primary[0] == "tuned" else ""))
     return {"primary": {"lr_mode": primary[0], "learning_rate": primary[1]},
             "slopes": slopes, "lr_exponent": lr_exponent, "message": message}
 
 
-def _check_fit_options(save_fraction: float, n_boot: int) -> None:
-    """Raise `ConfigError` when save_fraction or n_boot is out of range."""
+def _check_fit_options(save_fraction: float, n_boot: int, cost: str = "flops") -> None:
+    """Raise `ConfigError` when save_fraction, n_boot or the cost basis is out of range."""
     from ..errors import ConfigError
+    if cost not in COST_BASES:
+        raise ConfigError(f"cost: must be one of {'|'.join(COST_BASES)}; got {cost!r}")
     if not 0 < save_fraction < 1:
         raise ConfigError(f"save_fraction: must be between 0 and 1; got {save_fraction}")
     if n_boot < 20:
@@ -279,7 +299,8 @@ def _check_target(target: dict[str, Any] | None, sizes: dict[tuple[int, int], li
 
 def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int = 400,
              seed: int = 0, eval_every: int | None = None, source: str = "",
-             target: dict[str, Any] | None = None) -> dict[str, Any]:
+             cost: str = "flops", network: dict[str, Any] | None = None,
+             seconds_are_proxy: bool = True, target: dict[str, Any] | None = None) -> dict[str, Any]:
     """Fit the depth law, the reversal and the planning figures to measured runs.
 
     Args:
@@ -293,21 +314,30 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
         eval_every: evaluation interval, for the coarse-evaluation warning
             (default: read from the runs).
         source: name of the input, used in messages and stored in the result.
+        cost: basis of the compute-optimal depth's cost per update: "flops" (the analytic
+            count of the network as built, `depthplan.fitting.cost.update_flops`) or
+            "seconds" (the measured seconds per update, fitted as a line in K).
+        network: the network's shape when the runs do not record it ({n_inputs, n_classes,
+            width or widths, batch_size}, see `depthplan.fitting.cost`).
+        seconds_are_proxy: the runs' seconds are this machine's timings of proxies (a
+            results folder), not used unless `cost="seconds"`; False for a user's timings of
+            their own jobs (a table), which serve when the shape is unknown.
         target: the job to plan for, {"width": W, "train_rows": n} (either may be None); with
             runs at several proxy sizes the `transfer` block predicts its figures.
 
     Returns:
         The content of fit.json (schema in the module docstring and
         docs/fit-json.md), JSON-ready, with no NaN. With several learning-rate
-        groups the top level describes the primary group (the fixed-rate group
-        with most runs, else the tuned group) and `by_learning_rate` holds a
-        full fit per group.
+        groups the top level describes the primary group (the group with the
+        rate tuned per depth when there is one, else the fixed-rate group with
+        most runs; `records.primary_group`) and `by_learning_rate` holds a full
+        fit per group.
 
     Raises:
         DataError: fewer than three depths, no converged runs at two depths, or
             no runs at all. ConfigError: save_fraction or n_boot out of range.
     """
-    _check_fit_options(save_fraction, n_boot)
+    _check_fit_options(save_fraction, n_boot, cost)
     # trials of a learning-rate search measure the search, not the depth law
     known = [r for r in runs if r.status in STATUSES and r.lr_mode != "tuning"]
     if not known:
@@ -316,7 +346,8 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
         eval_every = eval_interval(known)
     sizes = _by_size(known)
     _check_target(target, sizes)
-    kw = dict(save_fraction=save_fraction, n_boot=n_boot, seed=seed, eval_every=eval_every)
+    kw = dict(save_fraction=save_fraction, n_boot=n_boot, seed=seed, eval_every=eval_every,
+              cost={"basis": cost, "network": network, "seconds_are_proxy": seconds_are_proxy})
     transfer = None
     if len(sizes) > 1:          # the headline describes the largest proxy; the trend goes in `transfer`
         transfer = _transfer(sizes, target, kw, source)
@@ -329,6 +360,8 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
         by_rate = _fit_by_rate(groups, primary, main, source, kw)
         interaction = _lr_interaction(by_rate, groups, primary)
     notes = list(main["warnings"])
+    if len(groups) == 1 and single_rate_warning(main["rate_effect"]):
+        notes.append(single_rate_warning(main["rate_effect"]))
     if len(known) < len(runs):
         notes.insert(0, f"{_plural(len(runs) - len(known), 'run')} failed, unfinished or from "
                         "a learning-rate search left out")
@@ -369,7 +402,7 @@ def default_json_path(path: Path) -> Path:
 
 
 def fit_loaded(runs: list[RunResult], *, source: str, kind: str, info: dict[str, Any] | None = None,
-               **kw: Any) -> dict[str, Any]:
+               folder: Path | None = None, **kw: Any) -> dict[str, Any]:
     """fit.json's content for runs already read: `fit_runs` plus the `input` block.
 
     Args:
@@ -377,11 +410,16 @@ def fit_loaded(runs: list[RunResult], *, source: str, kind: str, info: dict[str,
         source: what the runs came from, as fit.json's `source` states it.
         kind: `results_folder` or `table`.
         info: the folder's sweep.json (eval_every, max_updates, name), if any.
+        folder: the results folder, whose config.yaml gives the network's shape when the runs
+            do not record it (for the FLOP count).
         **kw: passed to `fit_runs`.
     """
     info = info or {}
     kw.setdefault("eval_every", eval_interval(runs, info))
     kw.setdefault("source", source)
+    kw.setdefault("seconds_are_proxy", kind == "results_folder")   # a table's seconds are the user's jobs
+    if folder is not None and network_of(runs) is None:
+        kw.setdefault("network", network_from_config(folder))
     fit = fit_runs(runs, **kw)
     fit["input"] = _clean({"kind": kind, "sweep_name": info.get("name"), "max_updates": info.get("max_updates")})
     return fit
@@ -393,7 +431,10 @@ def fit_path(path: Path, json_out: Path | None = None, **kw: Any) -> tuple[dict[
     Args:
         path: results folder or CSV table (see `depthplan.tables.load_runs`).
         json_out: where to write; default `default_json_path(path)`.
-        **kw: passed to `fit_runs` (save_fraction, n_boot, seed, eval_every).
+        **kw: passed to `fit_runs` (save_fraction, n_boot, seed, eval_every, cost). A
+            table's seconds count as the user's own timings (`seconds_are_proxy` False); a
+            folder whose runs do not record their shape takes it from its config.yaml when
+            that fixes it (`inputs.network_from_config`).
 
     Returns:
         (the fit, the path written). The file is replaced atomically.
@@ -404,7 +445,7 @@ def fit_path(path: Path, json_out: Path | None = None, **kw: Any) -> tuple[dict[
     path = Path(path)
     info = read_sweep_info(path) if path.is_dir() else {}
     fit = fit_loaded(load_runs(path), source=str(path), kind="results_folder" if path.is_dir() else "table",
-                     info=info, **kw)
+                     info=info, folder=path if path.is_dir() else None, **kw)
     out = Path(json_out) if json_out is not None else default_json_path(path)
     if not out.parent.is_dir():
         raise DataError(f"{out}: the folder {out.parent} does not exist")

@@ -18,6 +18,7 @@ import numpy as np
 from scipy import stats
 
 from ..records import RunResult
+from .accuracy import accuracy_fields
 from .estimators import (
     _breakpoint_grid,
     _design_power,
@@ -31,7 +32,7 @@ from .estimators import (
 # ---------------------------------------------------------------- per-depth table
 
 def summarize_depths(runs: Sequence[RunResult]) -> list[dict[str, Any]]:
-    """One row per depth: counts by status, median and quartiles of T.
+    """One row per depth: counts by status, median and quartiles of T, validation accuracy.
 
     Quantiles are taken over converged and censored runs with censored ones
     ranked last: the median is given only where under half the runs are
@@ -67,6 +68,7 @@ def summarize_depths(runs: Sequence[RunResult]) -> list[dict[str, Any]]:
                 "more than the budget" if n else "no finished run"),
             "budget": float(min(budgets)) if budgets else None,
             "seconds_per_update": float(np.median(sec)) if sec else None,
+            **accuracy_fields(at),
         })
     return rows
 

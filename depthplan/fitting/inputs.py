@@ -6,7 +6,12 @@ probes) and/or `runs.csv` (columns `records.RUN_COLUMNS`), and optionally
 `sweep.json` (`eval_every`, `max_updates`, `name`). A measurements table is a
 CSV file that a user wrote about their own jobs:
 
-    depth,iterations[,seed][,status][,seconds_per_update][,learning_rate][,width][,train_rows][,eval_every]
+    depth,iterations[,seed][,status][,seconds_per_update][,learning_rate][,width][,train_rows]
+        [,eval_every][,n_inputs,n_classes,batch_size]
+
+With `width` (taken as the width of every hidden layer), `n_inputs`, `n_classes` and
+`batch_size` on a row, the row records its network's shape (`extra["network"]`), from which
+the fit counts the FLOPs of an update (`depthplan.fitting.cost`).
 
 `status` is one of `converged|censored|diverged` (empty means converged); a
 censored row's `iterations` is the budget it ran out of. `runs.csv` is read by
@@ -113,6 +118,9 @@ COLUMN_SPECS: dict[str, _Spec] = {
     "width": (_positive_int, "must be a whole number >= 1", 0),
     "train_rows": (_positive_int, "must be a whole number >= 1", 0),
     "eval_every": (_positive_int, "must be a whole number >= 1", None),
+    "n_inputs": (_positive_int, "must be a whole number >= 1", None),
+    "n_classes": (_positive_int, "must be a whole number >= 1", None),
+    "batch_size": (_positive_int, "must be a whole number >= 1", None),
     "lr_mode": (_lr_mode, "must be fixed or tuned", "fixed"),
     "wall_seconds": (_nonnegative_number, "must be a number >= 0", math.nan),
     "final_train_loss": (_number, "must be a number", math.nan),
@@ -259,6 +267,10 @@ def _with_default_seeds(rows: list[dict[str, Any]]) -> list[RunResult]:
         eval_every = row.pop("eval_every")
         kw = {k: v for k, v in row.items() if k in _FIELD_NAMES}
         kw["extra"] = {} if eval_every is None else {"eval_every": eval_every}
+        shape = [row.pop(k) for k in ("n_inputs", "n_classes", "batch_size")]
+        if None not in shape and row["width"]:      # a table's width is every hidden layer's
+            kw["extra"]["network"] = {"n_inputs": shape[0], "n_classes": shape[1],
+                                      "widths": [row["width"]] * row["depth"], "batch_size": shape[2]}
         runs.append(RunResult(**kw))
     return runs
 
@@ -348,6 +360,32 @@ def load_runs(path: Path) -> list[RunResult]:
             raise DataError(f"{path}: no finished runs yet; run `depthplan run CONFIG` first")
         return runs
     return read_table(path)
+
+
+def network_from_config(folder: Path) -> dict[str, Any] | None:
+    """The network's shape from a results folder's config.yaml, for runs that do not record it.
+
+    Only where the config alone fixes the shape: the synthetic scenario (its `n_features` and
+    `n_classes`); for other datasets the number of inputs comes from the data, and None is
+    returned. None too when there is no readable config.yaml.
+    """
+    from ..config import load_config
+    from ..errors import DepthplanError
+
+    path = Path(folder) / "config.yaml"
+    if not path.is_file():
+        return None
+    try:
+        cfg = load_config(path)
+    except DepthplanError:
+        return None
+    if cfg.data.source != "synthetic":
+        return None
+    width = cfg.model.width
+    return {"n_inputs": cfg.data.n_features, "n_classes": cfg.data.n_classes,
+            "width": width if isinstance(width, int) else None,
+            "widths": None if isinstance(width, int) else list(width),
+            "batch_size": cfg.train.batch_size}
 
 
 def eval_interval(runs: list[RunResult], sweep_info: dict[str, Any] | None = None) -> int | None:

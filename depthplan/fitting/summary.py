@@ -9,6 +9,7 @@ from __future__ import annotations
 from typing import Any, Sequence
 
 from ..fit_record import FitResult, Planning, Reversal, Transfer
+from .cost import cost_label
 from .depthlaw import _Arrays
 
 # ---------------------------------------------------------------- wording
@@ -28,7 +29,7 @@ def _describe(group: dict[str, Any]) -> str:
 # ---------------------------------------------------------------- warnings of one group
 
 def _group_warnings(fit: dict[str, Any], d: _Arrays, eval_every: int | None) -> list[str]:
-    out: list[str] = []
+    out: list[str] = _accuracy_warnings(fit)
     depths, rows = fit["depths_swept"], fit["per_depth"]
     pl, rev, plan = fit["power_law"], fit["reversal"], fit["planning"]
     if len(depths) < 5:
@@ -89,7 +90,53 @@ def _group_warnings(fit: dict[str, Any], d: _Arrays, eval_every: int | None) -> 
     return out
 
 
+def _accuracy_warnings(fit: dict[str, Any]) -> list[str]:
+    """The accuracy guard's warning (first: it can overturn the depth to plan for), or none."""
+    check = fit["planning"].get("accuracy_check") or {}
+    return [check["note"]] if check.get("clearly_below") else []
+
+
 # ---------------------------------------------------------------- summary text
+
+def headline_lines(fit: FitResult | dict[str, Any]) -> list[str]:
+    """The depth to plan for with its basis and range, the accuracy guard, the cost basis and the
+    learning-rate caution: the first lines of `depthplan fit`, also printed by `run` and `demo`."""
+    r = fit if isinstance(fit, FitResult) else FitResult.from_dict(fit)
+    plan = r.planning
+    lines = []
+    if plan.recommended_depth is not None:
+        lines.append(f"Recommended depth: {_plural(plan.recommended_depth, 'layer')}"
+                     + (" [extrapolated]" if plan.recommended_extrapolated else "")
+                     + f" (from the {plan.recommended_basis}){_recommended_range(plan)}.")
+    else:
+        lines.append(f"No depth to plan for could be derived ({plan.recommended_basis}).")
+    check = plan.accuracy_check or {}
+    if check.get("clearly_below"):
+        lines.append(f"Accuracy warning: {check['note']}.")
+    opt = plan.compute_optimal_depth
+    basis = plan.cost_basis or None
+    if basis not in (None, "none") and opt.note and r.depth_gain:
+        lines.append(f"Cost per update ({basis} basis): {opt.note}.")
+    rate = (r.rate_effect or {}) if not r.lr_interaction else {}
+    if rate:
+        lines.append(f"Learning rate: one fixed rate served every depth ({rate['learning_rate']:g}), "
+                     f"so the slope includes the rate effect; {_rate_hint(rate)}")
+    return lines
+
+
+def _recommended_range(plan: Planning) -> str:
+    """', 95 % interval a to b' of the figure the recommended depth comes from ('' if none)."""
+    for fig, name in ((plan.compute_optimal_depth, "compute-optimal"),
+                      (plan.last_depth_worth_adding, "last depth worth adding")):
+        if fig.depth == plan.recommended_depth and name in plan.recommended_basis and fig.ci:
+            return f"; 95 % interval {fig.ci[0]:.0f} to {fig.ci[1]:.0f} layers"
+    return ""
+
+
+def _rate_hint(rate: dict[str, Any]) -> str:
+    from .rates import TUNE_KEY, rate_effect_words
+    return f"{rate_effect_words(rate)}. Tune the rate per depth ({TUNE_KEY}) to separate the two."
+
 
 def _ci_text(ci: Sequence[float] | None, fmt: str = ".2f") -> str:
     return "" if not ci or None in ci else f" (95 % interval {ci[0]:{fmt}} to {ci[1]:{fmt}})"
@@ -103,10 +150,7 @@ def format_summary(fit: FitResult | dict[str, Any]) -> str:
              f" ({_describe(r.group.to_dict())})"
              + (f" from {r.source}" if r.source else "") + "."]
     plan = r.planning
-    if plan.recommended_depth is not None:
-        lines.append(f"Recommended depth: {_plural(plan.recommended_depth, 'layer')}"
-                     + (" [extrapolated]" if plan.recommended_extrapolated else "")
-                     + f" (from the {plan.recommended_basis}).")
+    lines += headline_lines(r)
     lines += _law_lines(r) + [_reversal_line(r.reversal)] + _planning_lines(plan)
     probes = _probe_line(r)
     if probes:
@@ -157,7 +201,7 @@ def _planning_lines(plan: Planning) -> list[str]:
                      f"{100 * plan.save_fraction:g} %): {worth.depth}{_ci_text(worth.ci, '.0f')}"
                      + (" [extrapolated]" if worth.extrapolated else "") + ".")
     if opt.depth is not None:
-        lines.append(f"Compute-optimal depth (measured seconds per update): {opt.depth}"
+        lines.append(f"Compute-optimal depth ({cost_label(opt.cost_model)}): {opt.depth}"
                      f"{_ci_text(opt.ci, '.0f')}" + (" [extrapolated]" if opt.extrapolated else "") + ".")
     elif opt.note:
         lines.append(f"Compute-optimal depth: not given ({opt.note}).")

@@ -14,7 +14,9 @@ from typing import Any
 
 import numpy as np
 
+from ..fitting.cost import cost_basis_of, cost_label, network_words
 from ..fitting.planning import total_cost_curve
+from ..fitting.rates import TUNE_KEY, rate_effect_of, rate_effect_words
 from . import figures as F
 from .inputs import ReportInputs
 from .markup import EXTRAPOLATED, Block, Words
@@ -46,7 +48,8 @@ def _why(fit: dict[str, Any], w: Words) -> str:
         return "It is both the compute-optimal depth and the last depth worth adding." + past
     if rec == opt:
         return ("It is the compute-optimal depth: there the fitted number of updates times the "
-                "measured cost of one update is lowest"
+                f"cost of one update ({cost_label(plan['compute_optimal_depth'].get('cost_model'))}) "
+                "is lowest"
                 + (f", and it comes before the last depth worth adding (K = "
                    f"{w.num('planning.last_depth_worth_adding.depth', 'd')})." if worth else ".") + past)
     if rec == worth:
@@ -85,18 +88,40 @@ def _fewest_updates(fit: dict[str, Any], w: Words) -> str:
 
 def _compute_optimal(fit: dict[str, Any], w: Words) -> str:
     opt = fit["planning"]["compute_optimal_depth"]
-    head = "**Fewest seconds of compute (compute-optimal):** "
+    head = "**Least compute (compute-optimal):** "
     if opt.get("cost_model") is None:
-        return head + "not given: no seconds per update were measured."
+        return head + f"not given: {opt.get('note') or 'no cost per update is known'}."
     p = "planning.compute_optimal_depth."
-    cost = ("one update took about "
-            + (f"{w.num(p + 'cost_model.seconds_intercept', '.3g@1e3')} ms + "
-               if opt["cost_model"]["seconds_intercept"] > 0 else "")
-            + f"{w.num(p + 'cost_model.seconds_per_layer', '.3g@1e3')} ms per layer")
+    cost = _cost_words(opt["cost_model"], w, p + "cost_model.")
     if opt["depth"] is None:
         return head + f"not given: {opt.get('note') or 'no minimum within the search range'} ({cost})."
     return head + (f"K = {w.num(p + 'depth', 'd')}{w.ci(p + 'ci', 'd')}{badge(opt['extrapolated'])}, "
-                   f"where the fitted updates times the seconds per update are lowest ({cost}).")
+                   f"where the fitted updates times the cost of one update are lowest ({cost}).")
+
+
+def _cost_words(cost: dict[str, Any], w: Words, p: str) -> str:
+    """What one update costs on the fit's cost basis, and where that cost comes from."""
+    if cost_basis_of(cost) == "flops":
+        shape = network_words(cost)
+        if cost.get("per_layer") is None:
+            return (f"one update costs the floating-point operations of the network as built "
+                    f"({shape}), counted layer by layer up to K = {w.num(p + 'max_depth', 'd')}: "
+                    "an analytic count that holds on any hardware")
+        return (f"one update costs {w.num(p + 'per_layer', '.3g@1e-6')} MFLOP per hidden layer "
+                f"plus a fixed {w.num(p + 'intercept', '.3g@1e-6')} MFLOP, counted analytically for "
+                f"the network as built ({shape}; forward and backward matrix products), so the "
+                "figure holds on any hardware")
+    where = ("seconds per update this machine measured on the proxy runs, chosen with "
+             "`--cost seconds`; they include this machine's fixed overhead per update, which a "
+             "big job on other hardware does not share"
+             if cost.get("source", "").startswith("this machine") or not cost.get("source") else
+             "seconds per update given in the measurements table")
+    if "basis" not in cost:
+        where = "this machine's measured seconds per update (a fit written before the FLOP basis)"
+    return ("one update took about "
+            + (f"{w.num(p + 'seconds_intercept', '.3g@1e3')} ms + "
+               if cost["seconds_intercept"] > 0 else "")
+            + f"{w.num(p + 'seconds_per_layer', '.3g@1e3')} ms per layer: {where}")
 
 
 def _worth_adding(fit: dict[str, Any], w: Words) -> str:
@@ -265,11 +290,18 @@ def _caution(inp: ReportInputs, w: Words) -> str:
     groups = F.fitted_groups(fit)
     if len(groups) == 1 and groups[0]["group"].get("lr_mode") == "fixed" \
             and groups[0]["group"].get("learning_rate") is not None:
-        text += (" One learning rate served every depth, and with one rate for every depth, depth "
-                 "partly acts as a learning-rate multiplier (T·lr·K stays roughly constant), so "
-                 "part of the gain measured here may be a rate effect; a sweep with the rate tuned "
-                 "per depth separates the two.")
+        text += _single_rate_words(groups[0])
     return text
+
+
+def _single_rate_words(group: dict[str, Any]) -> str:
+    """The caution of a sweep with one fixed rate, with the measured direction of T·lr·K."""
+    effect = group.get("rate_effect") or rate_effect_of(group)
+    trend = f" Here, {rate_effect_words(effect)}." if effect else ""
+    return (" One learning rate served every depth, and at one rate a deeper net takes effectively "
+            "larger steps, so the slope includes the rate effect and part of the gain credited to "
+            f"depth may be the rate's.{trend} A sweep with the rate tuned per depth ({TUNE_KEY}) "
+            "separates the two.")
 
 
 def answer_blocks(inp: ReportInputs, w: Words) -> list[Block]:
@@ -280,9 +312,9 @@ def answer_blocks(inp: ReportInputs, w: Words) -> list[Block]:
             f"{badge(plan.get('recommended_extrapolated'))}. {_why(fit, w)}")
     if plan["recommended_depth"] is None:
         lead = _why(fit, w)
-    blocks: list[Block] = [("h", 2, "The answer", "answer"), ("p", lead, "answer lead"),
-                           ("ul", [_fewest_updates(fit, w), _compute_optimal(fit, w),
-                                   _worth_adding(fit, w)])]
+    blocks: list[Block] = [("h", 2, "The answer", "answer"), ("p", lead, "answer lead")]
+    blocks += _accuracy_blocks(fit, w)
+    blocks.append(("ul", [_fewest_updates(fit, w), _compute_optimal(fit, w), _worth_adding(fit, w)]))
     flat = _flat_words(fit)
     if flat:
         blocks.append(("p", flat))
@@ -291,6 +323,22 @@ def answer_blocks(inp: ReportInputs, w: Words) -> list[Block]:
                             "holds other learning-rate groups, compared further down."))
     blocks += [("p", _how_sure(fit, w)), ("p", _what_was_swept(inp)), ("p", _caution(inp, w), "caution")]
     return blocks
+
+
+def _accuracy_blocks(fit: dict[str, Any], w: Words) -> list[Block]:
+    """Right under the lead: the planned depth's validation accuracy when it is clearly below the best."""
+    check = fit["planning"].get("accuracy_check") or {}
+    if not check.get("clearly_below"):
+        return []
+    p = "planning.accuracy_check."
+    near = ("" if check["depth"] == fit["planning"]["recommended_depth"] else
+            f" (the swept depth nearest the planned {w.num('planning.recommended_depth', 'd')})")
+    return [("p", f"**Accuracy warning.** At K = {w.num(p + 'depth', 'd')}{near} the validation accuracy "
+                  f"is {w.num(p + 'accuracy', '.1f@100')} % (median over seeds), clearly below the "
+                  f"{w.num(p + 'best_accuracy', '.1f@100')} % of K = {w.num(p + 'best_depth', 'd')}: "
+                  "their spreads over seeds do not overlap. Fewer updates to converge do not make "
+                  "it the better network; weigh accuracy before committing to this depth (see the "
+                  "per-depth table).", "answer warning")]
 
 
 def dynamics_words(w: Words) -> str:

@@ -16,6 +16,7 @@ from matplotlib.colors import ListedColormap, Normalize
 from matplotlib.figure import Figure
 
 from ..fitting.diffusion import NO_DROP_DB
+from ..fitting.cost import cost_basis_of, cost_per_update
 from ..fitting.planning import total_cost_curve
 from ..records import RunResult
 from .figures import (
@@ -62,7 +63,7 @@ def plot_seconds_per_update(fit: dict[str, Any], runs: Sequence[RunResult], ax: 
                           s=30, marker="s", facecolor="white", edgecolor="black", zorder=4,
                           label="median per depth"))
     cost = fit["planning"]["compute_optimal_depth"].get("cost_model")
-    if cost:
+    if cost and "seconds_intercept" in cost:          # the line of the seconds basis only
         k = np.linspace(min(fit["depths_swept"]), max(fit["depths_swept"]), 50)
         u, v = cost["seconds_intercept"], cost["seconds_per_layer"]
         out += ax.plot(k, 1e3 * (u + v * k), color="black", lw=1.4,
@@ -73,8 +74,13 @@ def plot_seconds_per_update(fit: dict[str, Any], runs: Sequence[RunResult], ax: 
 
 
 def plot_total_cost(fit: dict[str, Any], runs: Sequence[RunResult], ax: Axes) -> list[Artist]:
-    """Compute to convergence (updates x seconds per update) against depth; compute-optimal depth marked."""
-    timed = [r for r in _timed(runs) if r.status in ("converged", "censored")]
+    """Compute to convergence (updates x cost per update, on the fit's cost basis) against depth;
+    compute-optimal depth marked."""
+    cost = fit["planning"]["compute_optimal_depth"].get("cost_model")
+    flops = cost_basis_of(cost) == "flops"
+    timed = [r for r in (runs if flops else _timed(runs)) if r.status in ("converged", "censored")]
+    per_update = (lambda r: float(cost_per_update(cost, [r.depth])[0])) if flops else \
+        (lambda r: r.seconds_per_update)
     out: list[Artist] = []
     for status, style in (("converged", {"marker": "o", "facecolor": SKY_BLUE, "edgecolor": "none",
                                          "alpha": 0.6, "label": "one run (seed)"}),
@@ -82,12 +88,13 @@ def plot_total_cost(fit: dict[str, Any], runs: Sequence[RunResult], ax: Axes) ->
                                         "label": "censored run: at least this"})):
         rs = [r for r in timed if r.status == status]
         if rs:
-            out.append(ax.scatter([r.depth for r in rs], [r.iterations * r.seconds_per_update for r in rs],
+            out.append(ax.scatter([r.depth for r in rs], [r.iterations * per_update(r) for r in rs],
                                   s=14 if status == "converged" else 28, zorder=3, **style))
     curve = total_cost_curve(fit)
     if curve is not None:
         out += ax.plot(curve[0], curve[1], color=BLUE, lw=1.8, zorder=4,
-                       label="fitted T(K) × fitted seconds per update")
+                       label="fitted T(K) × FLOPs per update" if flops else
+                       "fitted T(K) × fitted seconds per update")
     opt = fit["planning"]["compute_optimal_depth"]
     if opt["depth"] is not None:
         if opt["ci"]:
@@ -96,8 +103,8 @@ def plot_total_cost(fit: dict[str, Any], runs: Sequence[RunResult], ax: Axes) ->
         out.append(ax.axvline(opt["depth"], color=VERMILLION, ls="--", lw=1.2,
                               label=f"compute-optimal K = {opt['depth']}"
                                     f"{ci_words(opt['ci'], 'd')}{tag}"))
-    depth_panel(ax, fit["depths_swept"], "seconds of compute to converge",
-                "cost of training to convergence")
+    depth_panel(ax, fit["depths_swept"], "FLOPs to converge (analytic count)" if flops else
+                "seconds of compute to converge (this machine)", "cost of training to convergence")
     return out
 
 

@@ -17,10 +17,11 @@ from importlib import metadata
 from pathlib import Path
 from typing import Any
 
-import numpy as np
 
 from .. import __version__
 from . import figures as F
+from ..fitting.cost import cost_basis_of, cost_per_update
+from ..fitting.rates import rate_effect_of, rate_effect_words
 from .answer import badge, save_percent
 from .inputs import ReportInputs
 from .markup import Block, Words
@@ -65,6 +66,8 @@ def fit_table_blocks(inp: ReportInputs, w: Words) -> list[Block]:
     for key, label, note in (("last_depth_worth_adding", "last depth worth adding",
                               f"next layer saves under {save_percent(w)} %"),
                              ("compute_optimal_depth", "compute-optimal depth",
+                              "fewest updates × FLOPs per update"
+                              if plan.get("cost_basis") == "flops" else
                               "fewest updates × seconds per update")):
         fig = plan[key]
         rows.append([label, (w.num(f"planning.{key}.depth", "d") + badge(fig["extrapolated"]))
@@ -98,6 +101,25 @@ def _probe_by_depth(fit: dict[str, Any]) -> dict[int, dict[str, float | None]]:
     return out
 
 
+def _flops_cell(fit: dict[str, Any], depth: int) -> str:
+    """MFLOP of one update at `depth` on the FLOP basis, else '–'."""
+    cost = fit["planning"]["compute_optimal_depth"].get("cost_model")
+    if cost_basis_of(cost) != "flops":
+        return "–"
+    value = float(cost_per_update(cost, [depth])[0])
+    return _fmt(value / 1e6 if math.isfinite(value) else None, ".3g")
+
+
+def _accuracy_cell(row: dict[str, Any], at: list, w: Words, p: str) -> str:
+    """'80.0 % (77.8–80.5)' from the per-depth row; from the runs for fits written before it."""
+    if row.get("validation_accuracy") is None:
+        acc = _median([r.validation_accuracy for r in at])
+        return _fmt(None if acc is None else 100 * acc, ".1f", " %")
+    return (f"{w.num(p + 'validation_accuracy', '.1f@100')} % "
+            f"({w.num(p + 'validation_accuracy_lo', '.1f@100')}–"
+            f"{w.num(p + 'validation_accuracy_hi', '.1f@100')})")
+
+
 def depth_table_blocks(inp: ReportInputs, w: Words) -> list[Block]:
     """One row per depth: runs, T, cost, accuracy and the probe measures."""
     fit, runs = inp.fit, inp.primary_runs
@@ -115,24 +137,27 @@ def depth_table_blocks(inp: ReportInputs, w: Words) -> list[Block]:
         quart = (f"{w.num(p + 'q25', ',.0f')}–{w.num(p + 'q75', ',.0f')}"
                  if row["q25"] is not None else row["quartile_note"] or "–")
         compute = _median([r.iterations * r.seconds_per_update for r in at if r.status == "converged"])
-        acc = _median([r.validation_accuracy for r in at])
         pr = probes.get(row["depth"], {})
         rows.append([w.num(p + "depth", "d"),
                      f"{w.num(p + 'runs', 'd')} ({w.num(p + 'converged', 'd')} / "
                      f"{w.num(p + 'censored', 'd')} / {w.num(p + 'diverged', 'd')})",
-                     median, quart,
+                     median, quart, _flops_cell(fit, row["depth"]),
                      w.num(p + "seconds_per_update", ".3g@1e3") if row["seconds_per_update"] else "–",
-                     _fmt(compute, ".3g"), _fmt(None if acc is None else 100 * acc, ".1f", " %"),
+                     _fmt(compute, ".3g"), _accuracy_cell(row, at, w, p),
                      _fmt(pr.get("late_exponent"), ".2f"), _fmt(pr.get("transition_step"), ".0f"),
                      _fmt(pr.get("snr_drop_db"), ".1f")])
-    header = ["K", "runs (conv. / cens. / div.)", "median T", "quartiles of T", "ms per update",
-              "compute to converge (s)", "validation accuracy", "late displacement exponent",
+    header = ["K", "runs (conv. / cens. / div.)", "median T", "quartiles of T", "MFLOP per update",
+              "ms per update (this machine)", "seconds to converge (this machine)",
+              "validation accuracy: median (spread over seeds)", "late displacement exponent",
               "transition step", "SNR drop (dB)"]
     keep = [j for j in range(len(header)) if j < 4 or any(r[j] != "–" for r in rows)]
     return [("p", f"For the {F.group_label(fit['group'])}. Medians and quartiles of T rank censored "
                   "runs last, so a median is given only while fewer than half of a depth's runs are "
                   "censored (a quartile: a quarter); otherwise T is more than the budget shown. "
-                  "Compute is the median over converged runs of updates × seconds per update. Probe "
+                  "MFLOP per update is the analytic count of the network as built (forward and "
+                  "backward matrix products); seconds to converge is the median over converged runs "
+                  "of updates × this machine's seconds per update. Validation accuracy: median over "
+                  "seeds, with the lowest and highest seed in brackets. Probe "
                   "columns are medians over layers of the per-layer medians over seeds.", "small"),
             ("table", [header[j] for j in keep], [[r[j] for j in keep] for r in rows], "numbers")]
 
@@ -140,21 +165,12 @@ def depth_table_blocks(inp: ReportInputs, w: Words) -> list[Block]:
 # ---------------------------------------------------------------- learning rates, tuning, rounds
 
 def _rate_product_words(g: dict[str, Any]) -> str:
-    """How much T and T·lr·K change over the depths of a fixed-rate group's law."""
-    lr = g["group"]["learning_rate"]
-    used = set(g["power_law"]["depths_used"])
-    rows = [r for r in g["per_depth"] if r["median"] is not None and r["depth"] in used]
-    if len(rows) < 2 or not lr:
+    """How T·lr·K trends over the depths of a fixed-rate group's law, and what that direction means."""
+    effect = g.get("rate_effect") or rate_effect_of(g)
+    if not effect:
         return ""
-    t = np.array([r["median"] for r in rows])
-    prod = t * lr * np.array([r["depth"] for r in rows])
-    t_ratio, p_ratio = t.max() / t.min(), prod.max() / prod.min()
-    span = f"K = {rows[0]['depth']} to {rows[-1]['depth']}"
-    verdict = ("so over this range depth acts mostly as a rate multiplier"
-               if math.log(p_ratio) < 0.5 * math.log(t_ratio) else
-               "so here depth does more than multiply the rate")
-    return (f"At the {F.group_label(g['group'])}, median T changes {t_ratio:.1f}-fold over {span} "
-            f"while T·lr·K changes {p_ratio:.2f}-fold, {verdict}.")
+    text = rate_effect_words(effect)
+    return text[0].upper() + text[1:] + "."
 
 
 def rate_blocks(inp: ReportInputs, w: Words) -> list[Block]:
@@ -183,17 +199,20 @@ def rate_blocks(inp: ReportInputs, w: Words) -> list[Block]:
          rows, "numbers")]
     words = ["**The effective-rate effect.** With one learning rate for every depth, depth partly "
              "acts as a learning-rate multiplier: a deeper stack moves its output further per update "
-             "at the same rate, so T·lr·K stays roughly constant over a range of depths, and a "
+             "at the same rate. If depth did nothing else, T·lr·K would stay constant across K; "
+             "whether it falls, stays level or rises says how much more (or less) depth does, and a "
              "fixed-rate slope measures the rate as well as the depth."]
     fixed = [g for g in F.fitted_groups(fit) if g["group"].get("lr_mode") == "fixed"]
     words += [s for s in (_rate_product_words(g) for g in fixed) if s]
     tuned = [i for i, g in enumerate(entries) if g["group"].get("lr_mode") == "tuned" and "power_law" in g]
-    if tuned and fixed:
+    fixed_at = [i for i, g in enumerate(entries) if g["group"].get("lr_mode") == "fixed" and "power_law" in g]
+    if tuned and fixed_at:
+        against = ", ".join(f"{w.num(f'by_learning_rate.{i}.power_law.slope')} at the "
+                            f"{F.group_label(entries[i]['group'])}" for i in fixed_at)
         words.append(f"With the rate tuned per depth the slope is "
-                     f"{w.num(f'by_learning_rate.{tuned[0]}.power_law.slope')}, against "
-                     f"{w.num('power_law.slope')} at the {F.group_label(fit['group'])}: the "
-                     "difference is gain that a fixed rate credits to depth but a rate chosen for "
-                     "each depth gives anyway.")
+                     f"{w.num(f'by_learning_rate.{tuned[0]}.power_law.slope')}, against {against}: "
+                     "the difference is gain that a fixed rate credits to depth but a rate chosen "
+                     "for each depth gives anyway; the answer at the top uses the tuned rate.")
     inter = fit.get("lr_interaction") or {}
     if inter.get("lr_exponent") is not None:
         words.append(f"Across the fixed rates T scales as lr^{{{w.num('lr_interaction.lr_exponent')}}} "
@@ -236,7 +255,7 @@ def timing_note(fit: dict[str, Any]) -> str:
     """A note when measured seconds per update stray far (over 2x) from the straight-line cost model."""
     cost = fit["planning"]["compute_optimal_depth"].get("cost_model")
     rows = [r for r in fit["per_depth"] if r["seconds_per_update"]]
-    if not cost or len(rows) < 3:
+    if cost_basis_of(cost) != "seconds" or len(rows) < 3:      # only the seconds basis rests on timings
         return ""
     worst = max(rows, key=lambda r: abs(math.log(r["seconds_per_update"] / (
         cost["seconds_intercept"] + cost["seconds_per_layer"] * r["depth"]))))

@@ -83,8 +83,19 @@ def ensure_fit(path: Path, fit_file: Path, *, n_boot: int = 400) -> tuple[dict[s
     fit, why = _stale_reason(fit_file, inputs)
     if fit is not None:
         return fit, f"reused {fit_file.name}: it is newer than the runs"
-    fit, _ = fit_path(path, fit_file, n_boot=n_boot)
+    basis = _stored_cost_basis(fit_file)
+    fit, _ = fit_path(path, fit_file, n_boot=n_boot, cost=basis)
     return fit, f"fitted now ({n_boot} bootstrap resamples) because {why}"
+
+
+def _stored_cost_basis(fit_file: Path) -> str:
+    """The cost basis a refit keeps: the stored fit's `planning.cost_basis` when it asked for
+    seconds (`depthplan fit --cost seconds`), else the default, flops."""
+    try:
+        stored = json.loads(fit_file.read_text(encoding="utf-8"))
+        return "seconds" if stored["planning"]["cost_basis"] == "seconds" else "flops"
+    except (OSError, ValueError, KeyError, TypeError):
+        return "flops"
 
 
 # ---------------------------------------------------------------- reading the inputs
@@ -215,12 +226,22 @@ def _cost_figure(inp: ReportInputs) -> _Drawn | None:
     TF.plot_total_cost(inp.fit, inp.primary_runs, axes[1])
     F.shared_legend(fig, axes)
     return (fig, "cost", "Cost per depth",
-            "Left: measured wall-clock milliseconds per SGD update for each run, with the straight "
+            _cost_caption(inp.fit),
+            "Seconds per update and total compute to convergence against depth.")
+
+
+def _cost_caption(fit: dict[str, Any]) -> str:
+    if fit["planning"].get("cost_basis") == "flops":
+        return ("Left: measured wall-clock milliseconds per SGD update for each run, on this sweep's "
+                "machine (shown, not used: it includes this machine's fixed overhead per update). "
+                "Right: compute to converge for each run (updates × the analytic FLOP count of one "
+                "update of the network as built), the fitted law times that count, and the "
+                "compute-optimal depth with its interval (grey span).")
+    return ("Left: measured wall-clock milliseconds per SGD update for each run, with the straight "
             "line the compute-optimal depth is computed from. Right: compute to converge for each "
             "run (updates × seconds per update), the fitted law times the cost line, and the "
             "compute-optimal depth with its interval (grey span). Timings are of the proxy "
-            "networks on this sweep's machine.",
-            "Seconds per update and total compute to convergence against depth.")
+            "networks on this sweep's machine.")
 
 
 def _loss_figure(inp: ReportInputs) -> _Drawn | None:

@@ -279,6 +279,9 @@ def _result(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: Prob
         n_params=count_params(data.n_features, widths, data.n_classes),
         activation=model.activation, init=model.init, optimizer=train.optimizer,
         lr_mode=spec.lr_mode, cell_id=spec.cell_id,
+        # the network's shape, so that the fit can count the FLOPs of an update on any machine
+        extra={"network": {"n_inputs": data.n_features, "n_classes": data.n_classes,
+                           "widths": list(widths), "batch_size": train.batch_size}},
         eval_steps=tuple(s for s, _ in curve), train_loss=tuple(v for _, v in curve),
         probe_steps=tuple(p[0] for p in plog),
         displacement=tuple(tuple(p[1][i] for p in plog) for i in range(n_layers)) if probes.displacement and plog else (),

@@ -398,7 +398,8 @@ def test_learning_rate_groups_get_their_own_fits_and_a_warning():
                            rng, lr=0.05)
     runs += synthetic_runs(power(1500, -0.2), range(1, 8), 4, 0.05, rng, lr_mode="tuned")
     fit = F.fit_runs(runs, n_boot=60)
-    assert fit["group"] == {"lr_mode": "fixed", "learning_rate": 0.1, "n_runs": 28}
+    # the headline follows the rate tuned per depth when there is one (records.primary_group)
+    assert fit["group"] == {"lr_mode": "tuned", "learning_rate": None, "n_runs": 28}
     assert [g["group"]["lr_mode"] for g in fit["by_learning_rate"]] == ["fixed", "fixed", "tuned"]
     inter = fit["lr_interaction"]
     assert inter["lr_exponent"] == pytest.approx(-1.0, abs=0.15)
@@ -406,7 +407,7 @@ def test_learning_rate_groups_get_their_own_fits_and_a_warning():
     assert slopes[("tuned", None)] == pytest.approx(-0.2, abs=0.1)
     assert slopes[("fixed", 0.1)] == pytest.approx(-1.1, abs=0.15)
     assert any("depth and learning rate interact" in w for w in fit["warnings"])
-    assert "fixed learning rate 0.1" in F.format_summary(fit)
+    assert "learning rate tuned per depth" in F.format_summary(fit)
     tuned_only = F.fit_runs([r for r in runs if r.lr_mode == "tuned"], n_boot=60)
     assert tuned_only["group"]["lr_mode"] == "tuned" and tuned_only["lr_interaction"] is None
     assert "tuned per depth" in F.format_summary(tuned_only)

@@ -276,6 +276,29 @@ def test_stored_folder_report_answers_first_and_gives_provenance(folder_report):
     assert {"scaling", "cost", "loss", "dynamics"} <= names
 
 
+def test_stored_folder_report_warns_on_accuracy_and_states_its_cost_basis(folder_report):
+    # The fixture (cut from a real demo sweep) plans a depth near 10 whose validation accuracy
+    # (K = 12: about 74.5 %) lies below every seed of K = 2 (about 78-80 %).
+    _, paths = folder_report
+    fit = json.loads(paths["fit"].read_text())
+    check = fit["planning"]["accuracy_check"]
+    assert check["clearly_below"] and "clearly lower validation accuracy" in fit["warnings"][0]
+    md = paths["md"].read_text(encoding="utf-8")
+    answer = md.split("## The answer", 1)[1].split("\n\n")
+    lead = [b.strip().lstrip("> ") for b in answer if b.strip()][:3]
+    assert lead[0].startswith("**Plan for") and lead[1].startswith("**Accuracy warning.**")
+    assert f"K = {check['best_depth']}" in lead[1]
+    # the fixture's runs predate the recorded shape: its config.yaml gives it (synthetic data)
+    assert fit["planning"]["cost_basis"] == "flops"
+    assert "MFLOP per hidden layer" in md and "64 inputs, hidden width 32, 4 classes, batch 32" in md
+    assert "MFLOP per update" in md and "validation accuracy: median (spread over seeds)" in md
+    # one fixed rate: the caution says which way T·lr·K went, with the tuning block to fix it
+    assert "T·lr·K stays roughly constant" not in md
+    change = {"flat": "stays about level", "falling": "falls", "rising": "rises"}
+    assert f"T·lr·K {change[fit['rate_effect']['direction']]}" in md
+    assert "`train.learning_rate` block" in md
+
+
 def test_stored_folder_report_shows_the_snr_drop_per_depth(folder_report):
     _, paths = folder_report
     by_depth = json.loads(paths["fit"].read_text())["diffusion"]["by_depth"]
@@ -319,7 +342,10 @@ def test_rate_groups_tuning_and_rounds_are_shown(rates_report):
     assert "fixed rate 0.02" in text and "rate tuned per depth" in text
     assert "round 2: reversal interval narrow enough" in text
     assert "Tuning trials" in text
-    assert "> 12,000" in text           # K = 1 at the fixed rate 0.02: every run hit the budget
+    # the headline and the per-depth table follow the tuned rate (records.primary_group)
+    assert fit["group"]["lr_mode"] == "tuned"
+    assert "the answer at the top is for the rate tuned per depth" in text
+    assert "the answer at the top uses the tuned rate" in text
 
 
 def test_scaling_plot_draws_censored_and_diverged_runs_as_such(rates_report):
@@ -363,6 +389,21 @@ def test_fit_is_reused_while_fresh_and_refitted_when_stale(tmp_path):
     _, note = ensure_fit(folder, fit_file, n_boot=20)
     assert "schema" in note
     assert json.loads(fit_file.read_text())["schema"] == "depthplan-fit/1"
+
+
+def test_a_refit_keeps_the_cost_basis_the_stored_fit_asked_for(tmp_path):
+    folder = tmp_path / "demo"
+    shutil.copytree(FIXTURE, folder)
+    fit_file = folder / "fit.json"
+    assert main(["fit", str(folder), "--cost", "seconds", "--bootstrap", "20"]) == 0
+    assert json.loads(fit_file.read_text())["planning"]["cost_basis"] == "seconds"
+    later = time.time() + 5
+    os.utime(folder / "runs.jsonl", (later, later))
+    fit, note = ensure_fit(folder, fit_file, n_boot=20)
+    assert note.startswith("fitted now") and fit["planning"]["cost_basis"] == "seconds"
+    fit_file.unlink()
+    fit, _ = ensure_fit(folder, fit_file, n_boot=20)
+    assert fit["planning"]["cost_basis"] == "flops"              # the default
 
 
 def test_report_command_writes_beside_a_table_and_says_where(tmp_path, capsys):
