@@ -188,7 +188,12 @@ PLAUSIBLE_WEIGHT = 0.1  # models with at least this Akaike weight count when ans
 
 
 def swept_gap(value: float, swept: Sequence[int], max_ratio: float = GAP_RATIO) -> tuple[int, int] | None:
-    """The swept depths (a, b) around `value` when a < value < b and b / a > max_ratio, else None."""
+    """The swept depths (a, b) around `value` when a < value < b and b / a > max_ratio, else None.
+
+    A value at a swept depth lies in no gap.
+    """
+    if any(k == value for k in swept):
+        return None
     below = [k for k in swept if k < value]
     above = [k for k in swept if k > value]
     if not below or not above:
