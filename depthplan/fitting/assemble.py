@@ -13,6 +13,8 @@ re-exports every public name (`__all__`):
                  is censored), fit_segmented (broken stick, Muggeo 2003),
                  fit_two_term (T = A K**s + B K**r), bic; on plain arrays
     depthlaw     summarize_depths, bootstrap draws, the power-law and reversal blocks
+    stuck        find_stuck: censored runs far beyond their converged siblings
+    selection    the four models by AICc and Akaike weight, reselecting bootstrap, lack of fit
     planning     log_t_curve, last_depth_worth_adding, compute_optimal_depth,
                  fit_cost_model, and the planning and curve blocks
     diffusion    the probe measures growth_exponent, transition_step, snr_drop_db,
@@ -37,9 +39,12 @@ Numbers are JSON numbers, null where undefined; never NaN.
                        falling_slope, rising_slope, rising_slope_ci, bic_single,
                        bic_segmented, n_depths_past, smooth_depth, smooth_model,
                        rise_suspected, note}
-    planning          {save_fraction, last_depth_worth_adding{depth, ci, extrapolated},
+    planning          {save_fraction, model, last_depth_worth_adding{depth, ci, extrapolated},
                        compute_optimal_depth{depth, ci, extrapolated, cost_model, note},
-                       recommended_depth, recommended_basis}
+                       recommended_depth, recommended_basis, recommended_range, gaps[],
+                       models_disagree[], next_depths[]}
+    models            {criterion, chosen, depths_used, n_runs, candidates[]}
+    stuck_runs[]      {depth, seed, budget}
     diffusion         null, or {n_runs, layers[], late_exponent_median,
                        transition_step_median, snr_drop_db_median, alpha}
     curve             {model, depths, median, lo, hi}: fitted T and its 95 % band

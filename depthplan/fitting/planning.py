@@ -19,6 +19,7 @@ from scipy import optimize
 from .depthlaw import _ci
 
 _K_MAX = 1000          # deepest depth the planning figures search
+MODELS = ("power_law", "saturating", "segmented", "two_term")   # code of a "selected" row = index
 _N_COLS = {"power_law": 2, "saturating": 3, "segmented": 4, "two_term": 4}
 
 
@@ -56,7 +57,6 @@ def log_t_curve(model: str, params: np.ndarray, depths: np.ndarray) -> np.ndarra
 
 def _log_t_selected(rows: np.ndarray, x: np.ndarray) -> np.ndarray:
     """`log_t_curve` of coded rows (code, p0..p3), each row under its own model."""
-    from .selection import MODELS
     out = np.empty((len(rows), x.shape[1]))
     code = rows[:, 0].astype(int)
     for i, name in enumerate(MODELS):

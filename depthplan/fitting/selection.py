@@ -53,8 +53,8 @@ from .estimators import (
     fit_power_law,
     fit_segmented,
 )
+from .planning import MODELS, log_t_curve
 
-MODELS = ("power_law", "saturating", "segmented", "two_term")
 CODES = {name: i for i, name in enumerate(MODELS)}
 N_PARAMS = {"power_law": 3, "saturating": 4, "segmented": 5, "two_term": 5}   # sigma included
 LACK_OF_FIT_P = 0.01      # a model fails the lack-of-fit check below this p-value
@@ -194,7 +194,6 @@ def bootstrap_selection(d: _Arrays, cands: dict[str, Candidate], chosen: str, n_
     `k_star` (B,) the reversal depth of each replicate reselected among the models
     with an inner minimum (segmented, two_term), and `method` of the resampling.
     """
-    from .planning import log_t_curve
     fitted = log_t_curve("selected", cands[chosen].row[None], d.K)[0]
     xb, Yb, Cb, method = _draws(d.x, d.y, d.C, n_boot, np.random.default_rng(seed + 11),
                                 fitted, N_PARAMS[chosen])
@@ -209,7 +208,6 @@ def bootstrap_selection(d: _Arrays, cands: dict[str, Candidate], chosen: str, n_
 
 def lack_of_fit(d: _Arrays, row: np.ndarray, n_params: int) -> dict[str, Any]:
     """The model against each depth's centre of log T (see the module docstring)."""
-    from .planning import log_t_curve
     depths = sorted({float(k) for k in d.K})
     resid, n_pe = 0.0, 0
     centres = []

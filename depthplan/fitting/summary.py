@@ -127,17 +127,25 @@ def _stuck_sentences(fit: dict[str, Any]) -> list[str]:
         seeds = ", ".join(f"seed {s['seed']} at {s['budget']:g} updates" for s in at)
         out.append(f"a {k}-layer net got stuck {len(at)} of {n} times ({seeds}: censored at "
                    f"over {STUCK_FACTOR:g} times the slowest converged run of that depth); stuck "
-                   "runs are left out of the depth law and counted in per_depth.stuck")
+                   "runs are left out of the depth law and counted in the per-depth stuck rate")
     return out
+
+
+def caveat_sentences(fit: dict[str, Any]) -> list[str]:
+    """The sentences that must come before any figure: an answer not pinned down, stuck runs.
+
+    For the report's opening; empty when neither applies (or for fits written before
+    these fields existed).
+    """
+    if "models" not in fit:
+        return []
+    first = _unresolved(fit["planning"])
+    return ([first] if first else []) + _stuck_sentences(fit)
 
 
 def _model_warnings(fit: dict[str, Any]) -> list[str]:
     """The warnings that lead: an answer not pinned down, stuck runs, models that miss depths."""
-    out = []
-    first = _unresolved(fit["planning"])
-    if first:
-        out.append(first)
-    out += _stuck_sentences(fit)
+    out = caveat_sentences(fit)
     models = fit["models"]
     chosen = next(c for c in models["candidates"] if c["model"] == models["chosen"])
     label = MODEL_LABELS.get(chosen["model"], chosen["model"])

@@ -15,6 +15,7 @@ from typing import Any
 import numpy as np
 
 from ..fitting.planning import total_cost_curve
+from ..fitting.summary import caveat_sentences
 from . import figures as F
 from .inputs import ReportInputs
 from .markup import EXTRAPOLATED, Block, Words
@@ -280,9 +281,11 @@ def answer_blocks(inp: ReportInputs, w: Words) -> list[Block]:
             f"{badge(plan.get('recommended_extrapolated'))}. {_why(fit, w)}")
     if plan["recommended_depth"] is None:
         lead = _why(fit, w)
-    blocks: list[Block] = [("h", 2, "The answer", "answer"), ("p", lead, "answer lead"),
-                           ("ul", [_fewest_updates(fit, w), _compute_optimal(fit, w),
-                                   _worth_adding(fit, w)])]
+    blocks: list[Block] = [("h", 2, "The answer", "answer"), ("p", lead, "answer lead")]
+    caveats = caveat_sentences(fit)
+    if caveats:   # said before the figures: where the data do not settle the answer, stuck runs
+        blocks.append(("p", " ".join(t[0].upper() + t[1:] + "." for t in caveats), "caveats"))
+    blocks.append(("ul", [_fewest_updates(fit, w), _compute_optimal(fit, w), _worth_adding(fit, w)]))
     flat = _flat_words(fit)
     if flat:
         blocks.append(("p", flat))
