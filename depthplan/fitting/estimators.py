@@ -459,7 +459,7 @@ def _fit_powers_batch(x: np.ndarray, Y: np.ndarray, C: np.ndarray, theta0: np.nd
         theta[ok], ll[ok], g[ok] = trial[better], new_ll[better], new_g[better]
         damp[ok] = np.maximum(damp[ok] / 3.0, 1e-9)
         damp[bad] *= 10.0
-        done = (better & (gain < 1e-10)) | (damp[idx] > 1e8)
+        done = (better & (gain < 1e-8)) | (damp[idx] > 1e6)
         active[idx[done]] = False
     return theta, ll
 
@@ -471,8 +471,8 @@ def _powers_starts(x: np.ndarray, y: np.ndarray, saturating: bool) -> np.ndarray
     rows = []
     if saturating:
         y_deep = float(np.min(y))
-        for s0 in (-0.3, -0.7, -1.5, -3.0):
-            for share in (0.2, 0.5, 0.8):        # T_inf as a share of T at the deepest depth
+        for s0 in (-0.4, -1.0, -2.5):
+            for share in (0.2, 0.7):             # T_inf as a share of T at the deepest depth
                 rows.append([float(np.max(y)) + math.log(1 - share * 0.99) - s0 * float(np.min(x)),
                              y_deep + math.log(share), math.log(-s0), sd])
     else:

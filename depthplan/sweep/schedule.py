@@ -272,7 +272,9 @@ def decide(runs: list[RunResult], policy: AdaptiveConfig, *, round_no: int, cpu_
     seeds = _extra_seeds(runs, policy)
     if not add and not seeds:
         return Decision(True, "no depth left to add near the minimum", reversal=summary)
-    where = f"near the minimum at K={k_star:.1f}" if status == "observed" and k_star else "beyond the deepest depth"
+    gap_words = ("inside the gaps of the swept depths around"
+                 if status == "observed" and (fit.get("planning") or {}).get("next_depths") else "near")
+    where = f"{gap_words} the minimum at K={k_star:.1f}" if status == "observed" and k_star else "beyond the deepest depth"
     return Decision(False, f"round {round_no}: adding depths {sorted(add)} {where}"
                            + (f", {policy.extra_seeds} seeds at K={next(iter(seeds))}" if seeds else ""),
                     sorted(add), seeds, summary)
