@@ -19,7 +19,8 @@ from .records import ReversalStatus
 
 __all__ = ["ABSENT", "Record", "FitResult", "FitGroup", "PowerLaw", "Reversal", "Planning",
            "PlannedDepth", "Diffusion", "DiffusionLayer", "DiffusionDepth", "Curve", "DepthRow", "Bootstrap",
-           "GroupLabel", "FitInput", "LrInteraction", "Transfer", "TransferTarget"]
+           "GroupLabel", "FitInput", "LrInteraction", "Transfer", "TransferTarget", "LackOfFit", "ModelFit",
+           "Models", "StuckRun"]
 
 
 class _Absent:
@@ -136,6 +137,55 @@ class DepthRow(Record):
     validation_accuracy_lo: float | None = _absent()
     validation_accuracy_hi: float | None = _absent()
     validation_accuracy_spread: str | None = _absent()
+    stuck: int = _absent()
+    stuck_rate: float | None = _absent()
+
+
+@dataclass(frozen=True)
+class LackOfFit(Record):
+    checked: bool = _absent()
+    p_value: float | None = _absent()
+    missed_depths: list[int] = _absent()
+
+
+@dataclass(frozen=True)
+class ModelFit(Record):
+    """One candidate model of `models.candidates`."""
+
+    model: str = _absent()
+    n_params: int = _absent()
+    loglik: float | None = _absent()
+    aicc: float | None = _absent()
+    delta_aicc: float | None = _absent()
+    weight: float = _absent()
+    bootstrap_share: float | None = _absent()
+    params: dict[str, float] = _absent()
+    k_star: float | None = _absent()
+    last_depth_worth_adding: int | None = _absent()
+    compute_optimal_depth: int | None = _absent()
+    recommended_depth: int | None = _absent()
+    lack_of_fit: LackOfFit = _absent()
+
+
+@dataclass(frozen=True)
+class Models(Record):
+    """fit.json `models`: the candidates compared by AICc and the one chosen."""
+
+    criterion: str = _absent()
+    chosen: str = _absent()
+    depths_used: list[int] = _absent()
+    n_runs: int = _absent()
+    candidates: list[ModelFit] = _absent()
+
+    def get(self, name: str) -> ModelFit | None:
+        return next((c for c in self.candidates or [] if c.model == name), None)
+
+
+@dataclass(frozen=True)
+class StuckRun(Record):
+    depth: int = _absent()
+    seed: int = _absent()
+    budget: int = _absent()
 
 
 @dataclass(frozen=True)
@@ -160,6 +210,7 @@ class PowerLaw(Record):
     alpha: float | None = _absent()
     alpha_ci: list[float | None] = _absent()
     without_shallowest: PowerLaw | None = _absent()
+    lack_of_fit: LackOfFit = _absent()
 
 
 @dataclass(frozen=True)
@@ -176,6 +227,8 @@ class Reversal(Record):
     smooth_depth: float | None = _absent()
     smooth_model: dict[str, float] | None = _absent()
     rise_suspected: bool = _absent()
+    model: str | None = _absent()
+    breakpoint: float | None = _absent()
     note: str = _absent()
 
     @property
@@ -203,6 +256,10 @@ class Planning(Record):
     recommended_extrapolated: bool = _absent()
     cost_basis: str = _absent()
     accuracy_check: dict[str, Any] = _absent()
+    recommended_range: list[int] | None = _absent()
+    gaps: list[dict[str, Any]] = _absent()
+    models_disagree: list[dict[str, Any]] = _absent()
+    next_depths: list[int] = _absent()
 
 
 @dataclass(frozen=True)
@@ -330,6 +387,8 @@ class FitGroup(Record):
     power_law: PowerLaw = _absent()
     reversal: Reversal = _absent()
     planning: Planning = _absent()
+    models: Models = _absent()
+    stuck_runs: list[StuckRun] = _absent()
     diffusion: Diffusion | None = _absent()
     curve: Curve = _absent()
     eval_every: int | None = _absent()

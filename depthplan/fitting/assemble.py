@@ -13,6 +13,8 @@ re-exports every public name (`__all__`):
                  is censored), fit_segmented (broken stick, Muggeo 2003),
                  fit_two_term (T = A K**s + B K**r), bic; on plain arrays
     depthlaw     summarize_depths, bootstrap draws, the power-law and reversal blocks
+    stuck        find_stuck: censored runs far beyond their converged siblings
+    selection    the four models by AICc and Akaike weight, reselecting bootstrap, lack of fit
     planning     log_t_curve, last_depth_worth_adding, compute_optimal_depth,
                  fit_cost_model, and the planning and curve blocks
     cost         the cost of one update: FLOP count of the network as built, or seconds
@@ -41,10 +43,13 @@ Numbers are JSON numbers, null where undefined; never NaN.
                        falling_slope, rising_slope, rising_slope_ci, bic_single,
                        bic_segmented, n_depths_past, smooth_depth, smooth_model,
                        rise_suspected, note}
-    planning          {save_fraction, last_depth_worth_adding{depth, ci, extrapolated},
+    planning          {save_fraction, model, last_depth_worth_adding{depth, ci, extrapolated},
                        compute_optimal_depth{depth, ci, extrapolated, cost_model, note},
                        recommended_depth, recommended_basis, recommended_extrapolated,
-                       cost_basis: flops|seconds|none, accuracy_check{...}}
+                       cost_basis: flops|seconds|none, accuracy_check{...}, recommended_range,
+                       gaps[], models_disagree[], next_depths[]}
+    models            {criterion, chosen, depths_used, n_runs, candidates[]}
+    stuck_runs[]      {depth, seed, budget}
     diffusion         null, or {n_runs, layers[], late_exponent_median,
                        transition_step_median, snr_drop_db_median, alpha}
     curve             {model, depths, median, lo, hi}: fitted T and its 95 % band
@@ -68,6 +73,7 @@ from ..errors import DataError
 from ..records import STATUSES, ReversalStatus, RunResult, group_runs, primary_group, write_text_atomic
 from .depthlaw import (
     _Arrays,
+    _ci,
     _gain,
     _location,
     _power_law_block,
@@ -85,12 +91,23 @@ from .estimators import (
 )
 from .inputs import eval_interval, load_runs, network_from_config, read_sweep_info
 from .planning import (
+    _answer_block,
     _curve_block,
     _planning_block,
 )
 from .rates import rate_effect, rate_effect_words, single_rate_warning
-from .summary import _describe, _group_warnings, _plural
 from .transfer import fit_transfer, size_of, target_error
+from .selection import (
+    N_PARAMS,
+    akaike_weights,
+    bootstrap_selection,
+    eligible_models,
+    fit_candidates,
+    k_star,
+    lack_of_fit,
+)
+from .stuck import find_stuck
+from .summary import _accuracy_warnings, _describe, _group_warnings, _model_warnings, _plural
 
 __all__ = ["SCHEMA", "fit_runs", "fit_path", "default_json_path", "power_law_curve"]
 
@@ -107,12 +124,14 @@ def _fit_group(runs: list[RunResult], *, save_fraction: float, n_boot: int, seed
     is {basis, network, seconds_are_proxy} for the compute-optimal depth (`network` None: the
     group's runs' own record, `cost.network_of`)."""
     name = source or "the runs"
-    per_depth = summarize_depths(runs)
+    stuck = find_stuck(runs)
+    per_depth = summarize_depths(runs, stuck)
     swept = [row["depth"] for row in per_depth]
     if len(swept) < 3:
         raise DataError(f"{name}: runs at {len(swept)} depth{'s' * (len(swept) != 1)} "
                         f"({', '.join(map(str, swept))}); a depth law needs at least three")
-    used = [r for r in runs if r.status in ("converged", "censored")]
+    stuck_ids = {id(r) for r in stuck}
+    used = [r for r in runs if r.status in ("converged", "censored") and id(r) not in stuck_ids]
     d = _Arrays(np.array([r.depth for r in used], float),
                 np.array([r.iterations for r in used], float),
                 np.array([r.status == "censored" for r in used], bool))
@@ -142,29 +161,101 @@ def _fit_group(runs: list[RunResult], *, save_fraction: float, n_boot: int, seed
     status = (ReversalStatus.NONE if not gain else ReversalStatus.OBSERVED if rev["candidate"]
               else ReversalStatus.BEYOND_RANGE).value
     reversal = _reversal_fields(rev, status, d, depths, seg_draws)
+    k_lo, k_hi = (depths[0], depths[-1]) if status == "observed" else (span[0], span[-1])
+    sel = _select_models(d.subset(d.K <= k_hi), status == "observed", n_boot, seed)
     if status == "observed":
-        model, point, draws = "segmented", np.array(rev["point"]), seg_draws
-        k_lo, k_hi = depths[0], depths[-1]
-    else:
-        model, point = "power_law", np.array([pl["intercept"], pl["slope"]])
-        draws, k_lo, k_hi = pl_draws, span[0], span[-1]
+        _reversal_from_models(reversal, sel)
     rise_after = span[-1] if reversal["rise_suspected"] else None
     cost = dict(cost or {})
     cost["network"] = network_of(runs) or cost.get("network")
-    planning = _planning_block(model, point, draws, depths, per_depth, save_fraction, gain,
+    point, draws = sel["cands"][sel["chosen"]].row, sel["boot"]["rows"]
+    planning = _planning_block("selected", point, draws, depths, per_depth, save_fraction, gain,
                                rise_after, cost)
+    planning["model"] = sel["chosen"]
+    models = _models_block(sel, depths, per_depth, save_fraction, gain, rise_after, cost)
+    planning.update(_answer_block(planning, reversal, depths, {
+        c["model"]: c for c in models["candidates"]}, gain,
+        capped=rise_after is not None and planning["recommended_depth"] == rise_after))
     diffusion = diffusion_summary(runs)
     if diffusion is not None:
         diffusion["alpha"] = pl["alpha"]
+    curve = _curve_block("selected", point, draws, k_lo, k_hi)
+    curve["model"] = sel["chosen"]
+    single = lack_of_fit(d.subset(d.K <= span[-1]), np.array([0.0, pl["intercept"], pl["slope"],
+                                                            0.0, 0.0]), 3)
+    pl["lack_of_fit"] = {k: single[k] for k in ("checked", "p_value", "missed_depths")}
     fit = {"depth_gain": gain, "depths_swept": depths, "n_runs": len(runs),
            "per_depth": per_depth, "power_law": pl, "reversal": reversal,
-           "planning": planning, "diffusion": diffusion,
-           "curve": _curve_block(model, point, draws, k_lo, k_hi),
+           "planning": planning, "models": models, "stuck_runs": [
+               {"depth": r.depth, "seed": r.seed, "budget": r.iterations} for r in stuck],
+           "diffusion": diffusion, "curve": curve,
            "eval_every": eval_every, "rate_effect": rate_effect(runs, pl, per_depth),
            "bootstrap": {"n_boot": n_boot, "seed": seed, "method": pl["ci_method"],
                          "n_failed": pl["n_boot_failed"]}}
-    fit["warnings"] = _group_warnings(fit, d, eval_every)
+    # the accuracy guard first (it can overturn the depth), then what the data leave unsettled
+    fit["warnings"] = _accuracy_warnings(fit) + _model_warnings(fit) + _group_warnings(fit, d, eval_every)
     return fit
+
+
+def _select_models(d: _Arrays, rising: bool, n_boot: int, seed: int) -> dict[str, Any]:
+    """Fit the candidate models to `d`, weigh them, and refit them on bootstrap replicates."""
+    names = eligible_models(len(np.unique(d.K)), rising)
+    cands = fit_candidates(d, names)
+    chosen = min(cands, key=lambda k: cands[k].aicc)
+    boot = bootstrap_selection(d, cands, chosen, n_boot, seed)
+    return {"d": d, "cands": cands, "chosen": chosen, "weights": akaike_weights(cands),
+            "boot": boot}
+
+
+def _reversal_from_models(reversal: dict[str, Any], sel: dict[str, Any]) -> None:
+    """K* from the AICc-preferred model with a minimum; its interval reselects on every replicate."""
+    rising = [k for k in ("segmented", "two_term") if k in sel["cands"]]
+    best = sorted(rising, key=lambda k: sel["cands"][k].aicc)
+    for name in best:
+        k = float(k_star(sel["cands"][name].row)[0])
+        if math.isfinite(k):
+            reversal.update(depth=k, depth_ci=_ci(sel["boot"]["k_star"]), model=name)
+            reversal["note"] = f"T is lowest near K = {k:.1f} and rises past it"
+            return
+
+
+def _models_block(sel: dict[str, Any], depths: list[int], per_depth: list[dict[str, Any]],
+                  save_fraction: float, gain: bool, rise_after: int | None,
+                  cost: dict[str, Any] | None = None) -> dict[str, Any]:
+    """fit.json `models`: every candidate with its AICc, Akaike weight, answers and lack of fit."""
+    d, cands, w = sel["d"], sel["cands"], sel["weights"]
+    best = min(c.aicc for c in cands.values())
+    picks = sel["boot"]["picked"]
+    out = []
+    for name, c in cands.items():
+        plan = _planning_block("selected", c.row, np.empty((0, 5)), depths, per_depth,
+                               save_fraction, gain, rise_after, cost)
+        lof = lack_of_fit(d, c.row, N_PARAMS[name])
+        ks = float(k_star(c.row)[0])
+        out.append({"model": name, "n_params": N_PARAMS[name], "loglik": c.loglik,
+                    "aicc": c.aicc, "delta_aicc": c.aicc - best, "weight": w[name],
+                    "bootstrap_share": float(np.mean(picks == name)) if len(picks) else None,
+                    "params": _named_params(name, c.row),
+                    "k_star": ks if math.isfinite(ks) else None,
+                    "last_depth_worth_adding": plan["last_depth_worth_adding"]["depth"],
+                    "compute_optimal_depth": plan["compute_optimal_depth"]["depth"],
+                    "recommended_depth": plan["recommended_depth"],
+                    "lack_of_fit": {k: lof[k] for k in ("checked", "p_value", "missed_depths")}})
+    return {"criterion": "AICc", "chosen": sel["chosen"],
+            "depths_used": sorted({int(k) for k in d.K}), "n_runs": len(d.K),
+            "candidates": out}
+
+
+def _named_params(name: str, row: np.ndarray) -> dict[str, float]:
+    p = row[1:]
+    if name == "power_law":
+        return {"intercept": p[0], "slope": p[1]}
+    if name == "segmented":
+        return {"intercept": p[0], "falling_slope": p[1], "rising_slope": p[1] + p[2],
+                "breakpoint": math.exp(p[3])}
+    if name == "saturating":
+        return {"A": math.exp(p[0]), "s": p[1], "T_inf": math.exp(p[2])}
+    return {"A": math.exp(p[0]), "s": p[1], "B": math.exp(p[2]), "r": p[3]}
 
 
 def _reversal_fields(rev: dict[str, Any], status: str, d: _Arrays, depths: list[int],
@@ -172,11 +263,11 @@ def _reversal_fields(rev: dict[str, Any], status: str, d: _Arrays, depths: list[
     out = {key: rev.get(key) for key in ("falling_slope", "rising_slope", "rising_slope_ci",
                                          "bic_single", "bic_segmented", "n_depths_past")}
     out.update(status=status, depth=None, depth_ci=None, smooth_depth=None, smooth_model=None,
-               rise_suspected=False)
+               rise_suspected=False, model=None, breakpoint=rev.get("breakpoint"))
     loc = _location(d, depths)
     k_min = depths[int(np.argmin(loc))]
     if status == "observed":
-        out.update(depth=rev["breakpoint"], depth_ci=rev["breakpoint_ci"],
+        out.update(depth=rev["breakpoint"], depth_ci=rev["breakpoint_ci"], model="segmented",
                    note=f"T is lowest near K = {rev['breakpoint']:.1f} and rises past it")
         tt = fit_two_term(d.K, d.T, d.C, start=(rev["falling_slope"], rev["rising_slope"]))
         if tt.converged and depths[0] / 4 <= tt.minimum_depth <= 4 * depths[-1]:

@@ -31,19 +31,26 @@ from .estimators import (
 
 # ---------------------------------------------------------------- per-depth table
 
-def summarize_depths(runs: Sequence[RunResult]) -> list[dict[str, Any]]:
+def summarize_depths(runs: Sequence[RunResult],
+                     stuck: Sequence[RunResult] = ()) -> list[dict[str, Any]]:
     """One row per depth: counts by status, median and quartiles of T, validation accuracy.
 
     Quantiles are taken over converged and censored runs with censored ones
     ranked last: the median is given only where under half the runs are
     censored, the quartiles only where under a quarter are; otherwise they are
     None and `median_note` says "more than the budget". Diverged runs are
-    counted but have no T.
+    counted but have no T. Runs in `stuck` (`depthplan.fitting.stuck`) are
+    counted among the censored and in `stuck` / `stuck_rate` (of the finished
+    runs), but left out of the quantiles.
     """
+    stuck_ids = {id(r) for r in stuck}
     rows = []
     for k in sorted({r.depth for r in runs}):
         at = [r for r in runs if r.depth == k]
-        finished = [r for r in at if r.status in ("converged", "censored")]
+        n_stuck = sum(id(r) in stuck_ids for r in at)
+        n_done = sum(r.status in ("converged", "censored") for r in at)
+        finished = [r for r in at if r.status in ("converged", "censored")
+                    and id(r) not in stuck_ids]
         n_cens = sum(r.status == "censored" for r in finished)
         # censored runs ranked last; by the rules below no quantile reaches them
         top = 2.0 * max([r.iterations for r in finished], default=1.0)
@@ -54,12 +61,12 @@ def summarize_depths(runs: Sequence[RunResult]) -> list[dict[str, Any]]:
             median = float(np.quantile(values, 0.5))
         if n and 4 * n_cens < n:
             q25, q75 = float(np.quantile(values, 0.25)), float(np.quantile(values, 0.75))
-        budgets = [r.iterations for r in finished if r.status == "censored"]
+        budgets = [r.iterations for r in at if r.status == "censored"]
         sec = [r.seconds_per_update for r in at
                if isinstance(r.seconds_per_update, (int, float)) and r.seconds_per_update > 0]
         rows.append({
             "depth": int(k), "runs": len(at),
-            "converged": sum(r.status == "converged" for r in at), "censored": n_cens,
+            "converged": sum(r.status == "converged" for r in at), "censored": n_cens + n_stuck,
             "diverged": sum(r.status == "diverged" for r in at),
             "median": median, "q25": q25, "q75": q75,
             "median_note": "" if median is not None else (
@@ -69,6 +76,7 @@ def summarize_depths(runs: Sequence[RunResult]) -> list[dict[str, Any]]:
             "budget": float(min(budgets)) if budgets else None,
             "seconds_per_update": float(np.median(sec)) if sec else None,
             **accuracy_fields(at),
+            "stuck": n_stuck, "stuck_rate": n_stuck / n_done if n_done else None,
         })
     return rows
 

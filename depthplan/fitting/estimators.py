@@ -378,3 +378,142 @@ def fit_two_term(depths: Sequence[float], iterations: Sequence[float],
     k_min = (-s * A / (r * B)) ** (1.0 / (r - s))
     return TwoTermFit(A=A, B=B, s=s, r=r, sigma=math.exp(ls), loglik=-float(best.fun),
                       minimum_depth=float(k_min), converged=bool(best.success))
+
+
+# ---------------------------------------------------------------- sums of two powers, batched
+
+def _powers_loglik(theta: np.ndarray, x: np.ndarray, Y: np.ndarray, C: np.ndarray,
+                   saturating: bool) -> tuple[np.ndarray, np.ndarray]:
+    """Tobit log-likelihood (B,) and gradient (B, p) of log T = log(A K^s + B K^r) per row.
+
+    theta (B, p): two-term (log A, log B, u, v, log sigma) with s = -exp(u), r = exp(v);
+    saturating (log A, log T_inf, u, log sigma), the same with r = 0 (T_inf = B).
+    x (n,), Y and C (B, n).
+    """
+    la, lb, u = theta[:, 0:1], theta[:, 1:2], theta[:, 2:3]
+    ls = theta[:, -1:]
+    s = -np.exp(u)
+    r = np.zeros_like(s) if saturating else np.exp(theta[:, 3:4])
+    t1, t2 = la + s * x, lb + r * x
+    mu = np.logaddexp(t1, t2)
+    w1 = np.exp(t1 - mu)
+    w2 = 1.0 - w1
+    sigma = np.exp(ls)
+    z = (Y - mu) / sigma
+    log_sf = special.log_ndtr(-z)
+    lam = np.exp(-0.5 * z ** 2 - _LOG_SQRT_2PI - log_sf)
+    ll = np.where(C, log_sf, -ls - _LOG_SQRT_2PI - 0.5 * z ** 2).sum(1)
+    dmu = np.where(C, lam, z) / sigma
+    dls = np.where(C, lam * z, z ** 2 - 1.0)
+    cols = [(dmu * w1).sum(1), (dmu * w2).sum(1), (dmu * w1 * x).sum(1) * s[:, 0]]
+    if not saturating:
+        cols.append((dmu * w2 * x).sum(1) * r[:, 0])
+    cols.append(dls.sum(1))
+    return ll, np.column_stack(cols)
+
+
+def _fit_powers_batch(x: np.ndarray, Y: np.ndarray, C: np.ndarray, theta0: np.ndarray, *,
+                      saturating: bool, max_iter: int = 60) -> tuple[np.ndarray, np.ndarray]:
+    """Maximise `_powers_loglik` row by row from `theta0`, all rows at once.
+
+    Levenberg-Marquardt steps on the Hessian taken by central differences of the
+    exact gradient, each step kept only if the likelihood rises. Exponents stay
+    in [exp(-6), exp(2.5)], log sigma in [-12, 3], log A and log B no lower than
+    min(log T) - 25 (a term that small is absent). Returns (theta (B, p), loglik (B,)).
+    """
+    Y = np.atleast_2d(np.asarray(Y, float))
+    C = np.broadcast_to(np.asarray(C, bool), Y.shape)
+    theta = np.array(theta0, float, copy=True)
+    B, p = theta.shape
+    floor = float(Y.min()) - 25.0
+    lo = np.array([floor, floor, -6.0] + ([] if saturating else [-6.0]) + [-12.0])
+    hi = np.array([np.inf, np.inf, 2.5] + ([] if saturating else [2.5]) + [3.0])
+    theta = np.clip(theta, lo, hi)
+    ll, g = _powers_loglik(theta, x, Y, C, saturating)
+    damp = np.full(B, 1e-3)
+    active = np.isfinite(ll)
+    h = 1e-5
+    eye = np.eye(p)
+    for _ in range(max_iter):
+        idx = np.flatnonzero(active)
+        if not len(idx):
+            break
+        th, Yi, Ci = theta[idx], Y[idx], C[idx]
+        H = np.empty((len(idx), p, p))
+        for j in range(p):
+            e = h * eye[j]
+            H[:, :, j] = (_powers_loglik(th + e, x, Yi, Ci, saturating)[1]
+                          - _powers_loglik(th - e, x, Yi, Ci, saturating)[1]) / (2 * h)
+        H = 0.5 * (H + H.transpose(0, 2, 1))
+        scale = np.abs(np.diagonal(H, axis1=1, axis2=2)) + 1e-8
+        A = -H + damp[idx, None, None] * scale[:, None, :] * eye[None]
+        try:
+            step = np.linalg.solve(A, g[idx][..., None])[..., 0]
+        except np.linalg.LinAlgError:
+            step = g[idx] / scale
+        trial = np.clip(th + step, lo, hi)
+        new_ll, new_g = _powers_loglik(trial, x, Yi, Ci, saturating)
+        better = np.isfinite(new_ll) & (new_ll > ll[idx])
+        gain = np.where(better, new_ll - ll[idx], 0.0)
+        ok, bad = idx[better], idx[~better]
+        theta[ok], ll[ok], g[ok] = trial[better], new_ll[better], new_g[better]
+        damp[ok] = np.maximum(damp[ok] / 3.0, 1e-9)
+        damp[bad] *= 10.0
+        done = (better & (gain < 1e-8)) | (damp[idx] > 1e6)
+        active[idx[done]] = False
+    return theta, ll
+
+
+def _powers_starts(x: np.ndarray, y: np.ndarray, saturating: bool) -> np.ndarray:
+    """Start rows for `_fit_powers_batch`: a spread of exponents, terms split at mid-depth."""
+    xm, ym = float(np.median(x)), float(np.median(y))
+    sd = math.log(max(float(np.std(y)), 0.05))
+    rows = []
+    if saturating:
+        y_deep = float(np.min(y))
+        for s0 in (-0.4, -1.0, -2.5):
+            for share in (0.2, 0.7):             # T_inf as a share of T at the deepest depth
+                rows.append([float(np.max(y)) + math.log(1 - share * 0.99) - s0 * float(np.min(x)),
+                             y_deep + math.log(share), math.log(-s0), sd])
+    else:
+        for s0, r0 in ((-1.0, 1.0), (-0.5, 2.0), (-2.0, 0.5), (-1.0, 0.3)):
+            rows.append([ym - math.log(2) - s0 * xm, ym - math.log(2) - r0 * xm,
+                         math.log(-s0), math.log(r0), sd])
+    return np.array(rows)
+
+
+@dataclass(frozen=True)
+class SaturatingFit:
+    """T = T_inf + A K**s with A, T_inf >= 0 and s < 0: T levels off at T_inf (a plateau)."""
+
+    A: float
+    s: float
+    T_inf: float
+    sigma: float
+    loglik: float
+    converged: bool
+
+
+def fit_saturating(depths: Sequence[float], iterations: Sequence[float],
+                   censored: Sequence[bool] | None = None) -> SaturatingFit:
+    """Fit the saturating law T = T_inf + A K**s by maximum likelihood on log T.
+
+    Censored runs enter as lower bounds (Tobit), as in `fit_power_law`. The best
+    of several starts is kept; T_inf near 0 means no plateau (the single law).
+    """
+    x, y, c = _prepare(depths, iterations, censored)
+    starts = _powers_starts(x, y, True)
+    theta, ll = _fit_powers_batch(x, np.tile(y, (len(starts), 1)), np.tile(c, (len(starts), 1)),
+                                  starts, saturating=True)
+    j = int(np.nanargmax(np.where(np.isfinite(ll), ll, -np.inf)))
+    la, lt, u, ls = theta[j]
+    return SaturatingFit(A=math.exp(la), s=-math.exp(u), T_inf=math.exp(lt),
+                         sigma=math.exp(ls), loglik=float(ll[j]), converged=bool(np.isfinite(ll[j])))
+
+
+def aicc(loglik: float | np.ndarray, n_params: int, n: int) -> float | np.ndarray:
+    """Small-sample Akaike criterion -2 log L + 2k + 2k(k+1)/(n-k-1) (Hurvich and Tsai 1989;
+    Burnham and Anderson 2002, sec. 2.4): lower is better; inf when n <= k + 1."""
+    if n - n_params - 1 <= 0:
+        return np.inf * np.ones_like(loglik) if isinstance(loglik, np.ndarray) else math.inf
+    return -2.0 * loglik + 2 * n_params + 2 * n_params * (n_params + 1) / (n - n_params - 1)

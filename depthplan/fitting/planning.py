@@ -22,6 +22,8 @@ from .cost import choose_cost, cost_basis_of, cost_label, cost_per_update
 from .depthlaw import _ci
 
 _K_MAX = 1000          # deepest depth the planning figures search
+MODELS = ("power_law", "saturating", "segmented", "two_term")   # code of a "selected" row = index
+_N_COLS = {"power_law": 2, "saturating": 3, "segmented": 4, "two_term": 4}
 
 
 # ---------------------------------------------------------------- planning figures
@@ -30,8 +32,11 @@ def log_t_curve(model: str, params: np.ndarray, depths: np.ndarray) -> np.ndarra
     """Fitted mean log T at `depths` for each parameter row.
 
     Args:
-        model: "power_law" with params (B, 2) = (a, s), or "segmented" with
-            params (B, 4) = (a, s, d, psi), d = rising - falling slope.
+        model: "power_law" with params (B, 2) = (a, s); "segmented" with
+            params (B, 4) = (a, s, d, psi), d = rising - falling slope;
+            "two_term" (B, 4) = (log A, s, log B, r); "saturating" (B, 3) =
+            (log A, s, log T_inf); or "selected", coded rows (B, 5) = (code,
+            p0..p3) of `depthplan.fitting.selection`, each row its own model.
         depths: (m,) depths K.
 
     Returns:
@@ -39,11 +44,28 @@ def log_t_curve(model: str, params: np.ndarray, depths: np.ndarray) -> np.ndarra
     """
     params = np.atleast_2d(np.asarray(params, float))
     x = np.log(np.asarray(depths, float))[None]
+    if model == "selected":
+        return _log_t_selected(params, x)
     out = params[:, :1] + params[:, 1:2] * x
     if model == "segmented":
         out = out + params[:, 2:3] * np.clip(x - params[:, 3:4], 0.0, None)
+    elif model == "two_term":
+        out = np.logaddexp(out, params[:, 2:3] + params[:, 3:4] * x)
+    elif model == "saturating":
+        out = np.logaddexp(out, params[:, 2:3])
     elif model != "power_law":
         raise ValueError(f"unknown model {model!r}")
+    return out
+
+
+def _log_t_selected(rows: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """`log_t_curve` of coded rows (code, p0..p3), each row under its own model."""
+    out = np.empty((len(rows), x.shape[1]))
+    code = rows[:, 0].astype(int)
+    for i, name in enumerate(MODELS):
+        m = code == i
+        if m.any():
+            out[m] = log_t_curve(name, rows[m, 1:1 + _N_COLS[name]], np.exp(x[0]))
     return out
 
 
@@ -185,3 +207,117 @@ def total_cost_curve(fit: dict[str, Any]) -> tuple[np.ndarray, np.ndarray] | Non
         return None
     k = np.asarray(fit["curve"]["depths"], float)
     return k, np.asarray(fit["curve"]["median"], float) * cost_per_update(cost, k)
+
+
+# ---------------------------------------------------------------- gaps and the depths to sweep next
+
+GAP_RATIO = 1.3        # neighbouring swept depths further apart than this leave a gap
+MAX_NEW_DEPTHS = 4     # at most this many depths suggested at once
+PLAUSIBLE_WEIGHT = 0.1  # models with at least this Akaike weight count when answers are compared
+
+
+def swept_gap(value: float, swept: Sequence[int], max_ratio: float = GAP_RATIO) -> tuple[int, int] | None:
+    """The swept depths (a, b) around `value` when a < value < b and b / a > max_ratio, else None.
+
+    A value at a swept depth lies in no gap.
+    """
+    if any(k == value for k in swept):
+        return None
+    below = [k for k in swept if k < value]
+    above = [k for k in swept if k > value]
+    if not below or not above:
+        return None
+    a, b = max(below), min(above)
+    return (a, b) if b / a > max_ratio and b - a >= 2 else None
+
+
+def depths_in_gaps(spans: Sequence[tuple[float, float]], swept: Sequence[int], *,
+                   max_ratio: float = GAP_RATIO, max_new: int = MAX_NEW_DEPTHS) -> list[int]:
+    """Depths to sweep next: inside the gaps of the swept depths that an answer reaches into.
+
+    The one rule behind `planning.next_depths` and the adaptive sweep
+    (`depthplan.sweep.schedule.decide`). A gap is a pair of neighbouring swept
+    depths a < b with b / a > `max_ratio` and a whole depth between them; a
+    span (lo, hi) reaches into it when lo < b and hi > a (a point answer is
+    the span (v, v), so it must lie strictly between a and b). Each such gap is
+    filled with the fewest whole depths, spaced evenly on a log scale, that
+    leave no ratio above `max_ratio`; when more than `max_new` result, those
+    nearest (in log K) to a span are kept.
+
+    Example:
+        >>> depths_in_gaps([(10.3, 10.3)], [2, 4, 8, 16, 32])
+        [10, 13]
+    """
+    s = sorted(set(int(k) for k in swept))
+    spans = [(float(lo), float(hi)) for lo, hi in spans
+             if lo is not None and hi is not None and math.isfinite(lo) and math.isfinite(hi)]
+    new: set[int] = set()
+    for a, b in zip(s, s[1:]):
+        if b / a <= max_ratio or b - a < 2 or not any(lo < b and hi > a for lo, hi in spans):
+            continue
+        m = max(1, math.ceil(math.log(b / a) / math.log(max_ratio) - 1e-9) - 1)
+        new |= {min(b - 1, max(a + 1, round(a * (b / a) ** (i / (m + 1))))) for i in range(1, m + 1)}
+
+    def distance(k: int) -> float:
+        return min(0.0 if lo <= k <= hi else min(abs(math.log(k / max(lo, 1e-9))),
+                                                 abs(math.log(k / max(hi, 1e-9))))
+                   for lo, hi in spans)
+
+    return sorted(sorted(new, key=distance)[:max_new])
+
+
+def _answer_block(planning: dict[str, Any], reversal: dict[str, Any], depths: list[int],
+                  model_answers: dict[str, dict[str, Any]], gain: bool,
+                  capped: bool = False) -> dict[str, Any]:
+    """Where the answer is not pinned down: gaps, model disagreement, the range, next depths.
+
+    Returns the fields `recommended_range`, `gaps`, `models_disagree` and
+    `next_depths` that `depthplan.fitting.assemble` adds to the planning block.
+    `model_answers` maps each model to its Akaike `weight`, `k_star` and
+    `recommended_depth`; `capped` says the recommendation was held at the
+    depth of lowest measured T (a suspected rise), which also caps the range.
+    """
+    rec = planning["recommended_depth"]
+    figures = [("reversal depth", reversal.get("depth"), reversal.get("depth_ci"))]
+    for key, label in (("compute_optimal_depth", "compute-optimal depth"),
+                       ("last_depth_worth_adding", "last depth worth adding")):
+        fig = planning[key]
+        figures.append((label, fig.get("depth"), fig.get("ci")))
+    gaps = []
+    for label, value, _ in figures:
+        if value is None or not gain:
+            continue
+        gap = swept_gap(value, depths)
+        if gap is not None:
+            gaps.append({"figure": label, "value": value, "between": list(gap)})
+    # models the data cannot rule out; answers outside the swept depths are flagged as
+    # extrapolated elsewhere, so two of them differing is not called a disagreement
+    plausible = {k: v for k, v in model_answers.items() if v["weight"] >= PLAUSIBLE_WEIGHT}
+    disagree = []
+    for key in ("recommended_depth", "k_star"):
+        vals = {k: v[key] for k, v in plausible.items() if v.get(key) is not None}
+        inside = any(depths[0] <= v <= depths[-1] for v in vals.values())  # else: extrapolated
+        if len(vals) >= 2 and inside and max(vals.values()) - min(vals.values()) > 1:
+            disagree.append({"figure": "depth to plan for" if key == "recommended_depth"
+                             else "reversal depth", "by_model": vals})
+    rec_range = None
+    if gain and rec is not None:
+        ci = next((c for _, v, c in figures[1:] if v == rec and c), None)
+        ends = [rec] + (list(ci) if ci else [])
+        ends += [v["recommended_depth"] for v in plausible.values()
+                 if v.get("recommended_depth") is not None]
+        gap = swept_gap(rec, depths)
+        if gap is not None:
+            ends += list(gap)
+        lo, hi = int(min(ends)), int(max(ends))
+        if capped:
+            hi = min(hi, rec)
+        rec_range = [lo, hi] if hi - lo >= 2 else None
+    spans = [(g["value"], g["value"]) for g in gaps]
+    spans += [(min(d["by_model"].values()), max(d["by_model"].values())) for d in disagree]
+    if gaps or disagree:
+        spans += [tuple(c) for _, v, c in figures if v is not None and c]
+        if rec_range:
+            spans.append(tuple(rec_range))
+    return {"recommended_range": rec_range, "gaps": gaps, "models_disagree": disagree,
+            "next_depths": depths_in_gaps(spans, depths) if gain else []}

@@ -29,7 +29,7 @@ def _describe(group: dict[str, Any]) -> str:
 # ---------------------------------------------------------------- warnings of one group
 
 def _group_warnings(fit: dict[str, Any], d: _Arrays, eval_every: int | None) -> list[str]:
-    out: list[str] = _accuracy_warnings(fit)
+    out: list[str] = []
     depths, rows = fit["depths_swept"], fit["per_depth"]
     pl, rev, plan = fit["power_law"], fit["reversal"], fit["planning"]
     if len(depths) < 5:
@@ -61,9 +61,9 @@ def _group_warnings(fit: dict[str, Any], d: _Arrays, eval_every: int | None) -> 
         if rev["smooth_depth"] is None:
             out.append("the smooth two-term model did not fit; the reversal depth is not "
                        "cross-checked")
-        elif abs(rev["smooth_depth"] - rev["depth"]) > 1:
-            out.append(f"the segmented fit (K = {rev['depth']:.1f}) and the smooth two-term model "
-                       f"(K = {rev['smooth_depth']:.1f}) disagree by more than one layer")
+        elif abs(rev["smooth_depth"] - rev["breakpoint"]) > 1:
+            out.append(f"the segmented fit (K = {rev['breakpoint']:.1f}) and the smooth two-term "
+                       f"model (K = {rev['smooth_depth']:.1f}) disagree by more than one layer")
     if rev["rise_suspected"]:
         out.append(f"a rise past K = {fit['power_law']['depths_used'][-1]} is hinted but not "
                    "established; sweep deeper and add seeds before trusting a reversal")
@@ -96,6 +96,84 @@ def _accuracy_warnings(fit: dict[str, Any]) -> list[str]:
     return [check["note"]] if check.get("clearly_below") else []
 
 
+# ---------------------------------------------------------------- models, gaps, stuck runs
+
+MODEL_LABELS = {"power_law": "single power law", "saturating": "saturating law (plateau)",
+                "segmented": "broken stick", "two_term": "two-term model"}
+
+
+def _depth_list(depths: Sequence[int]) -> str:
+    return f"depth{'s' * (len(depths) != 1)} {', '.join(map(str, depths))}"
+
+
+def _unresolved(plan: dict[str, Any]) -> str:
+    """One sentence when the answer is not pinned down by the swept depths or the models, else ""."""
+    parts = [f"the {g['figure']} ({g['value']:.3g}) lies between the swept depths "
+             f"{g['between'][0]} and {g['between'][1]}, where nothing was swept"
+             for g in plan.get("gaps") or []]
+    parts += [f"the models disagree on the {m['figure']} by more than one layer ("
+              + ", ".join(f"{MODEL_LABELS.get(k, k)} {v:.3g}" for k, v in m["by_model"].items())
+              + ")" for m in plan.get("models_disagree") or []]
+    if not parts:
+        return ""
+    text = "the answer is not pinned down: " + "; ".join(parts)
+    rng = plan.get("recommended_range")
+    if rng:
+        text += f"; plan for a depth between {rng[0]} and {rng[1]}"
+    nxt = plan.get("next_depths")
+    return text + (f"; sweep {_depth_list(nxt)} next" if nxt else "")
+
+
+def _stuck_sentences(fit: dict[str, Any]) -> list[str]:
+    from .stuck import STUCK_FACTOR
+    rows = {r["depth"]: r for r in fit["per_depth"]}
+    out = []
+    for k in sorted({s["depth"] for s in fit.get("stuck_runs") or []}):
+        at = [s for s in fit["stuck_runs"] if s["depth"] == k]
+        n = rows[k]["converged"] + rows[k]["censored"]
+        seeds = ", ".join(f"seed {s['seed']} at {s['budget']:g} updates" for s in at)
+        out.append(f"a {k}-layer net got stuck {len(at)} of {n} times ({seeds}: censored at "
+                   f"over {STUCK_FACTOR:g} times the slowest converged run of that depth); stuck "
+                   "runs are left out of the depth law and counted in the per-depth stuck rate")
+    return out
+
+
+def caveat_sentences(fit: dict[str, Any]) -> list[str]:
+    """The sentences that must come before any figure: an answer not pinned down, stuck runs.
+
+    For the report's opening; empty when neither applies (or for fits written before
+    these fields existed).
+    """
+    if "models" not in fit:
+        return []
+    first = _unresolved(fit["planning"])
+    return ([first] if first else []) + _stuck_sentences(fit)
+
+
+def _model_warnings(fit: dict[str, Any]) -> list[str]:
+    """The warnings that lead: an answer not pinned down, stuck runs, models that miss depths."""
+    out = caveat_sentences(fit)
+    models = fit["models"]
+    chosen = next(c for c in models["candidates"] if c["model"] == models["chosen"])
+    label = MODEL_LABELS.get(chosen["model"], chosen["model"])
+    lof = chosen["lack_of_fit"]
+    if lof["missed_depths"]:
+        out.append(f"the chosen {label} misses {_depth_list(lof['missed_depths'])} (lack-of-fit "
+                   f"p = {lof['p_value']:.2g}); no candidate model follows the medians there, so "
+                   "read its figures as rough")
+    pl = fit["power_law"]
+    single = pl.get("lack_of_fit") or {}
+    if single.get("missed_depths"):
+        used = pl["depths_used"]
+        text = (f"the single power law misses {_depth_list(single['missed_depths'])} (lack-of-fit "
+                f"p = {single['p_value']:.2g}): T is not one power of K over depths "
+                f"{used[0]}-{used[-1]}, so the slope s summarises it poorly")
+        if chosen["model"] != "power_law":
+            text += f"; the {label} is preferred (Akaike weight {chosen['weight']:.2f})"
+        out.append(text)
+    return out
+
+
 # ---------------------------------------------------------------- summary text
 
 def headline_lines(fit: FitResult | dict[str, Any]) -> list[str]:
@@ -104,10 +182,15 @@ def headline_lines(fit: FitResult | dict[str, Any]) -> list[str]:
     r = fit if isinstance(fit, FitResult) else FitResult.from_dict(fit)
     plan = r.planning
     lines = []
+    unresolved = _unresolved(plan.to_dict())
+    if unresolved:
+        lines.append(f"Not settled: {unresolved[len('the answer is not pinned down: '):]}.")
     if plan.recommended_depth is not None:
+        rng = plan.recommended_range
         lines.append(f"Recommended depth: {_plural(plan.recommended_depth, 'layer')}"
                      + (" [extrapolated]" if plan.recommended_extrapolated else "")
-                     + f" (from the {plan.recommended_basis}){_recommended_range(plan)}.")
+                     + f" (from the {plan.recommended_basis})"
+                     + (f"; the data allow {rng[0]} to {rng[1]}" if rng else _recommended_range(plan)) + ".")
     else:
         lines.append(f"No depth to plan for could be derived ({plan.recommended_basis}).")
     check = plan.accuracy_check or {}
@@ -151,7 +234,8 @@ def format_summary(fit: FitResult | dict[str, Any]) -> str:
              + (f" from {r.source}" if r.source else "") + "."]
     plan = r.planning
     lines += headline_lines(r)
-    lines += _law_lines(r) + [_reversal_line(r.reversal)] + _planning_lines(plan)
+    lines += _stuck_lines(r) + _law_lines(r) + _model_lines(r) + [_reversal_line(r.reversal)]
+    lines += _planning_lines(plan)
     probes = _probe_line(r)
     if probes:
         lines.append(probes)
@@ -165,6 +249,30 @@ def format_summary(fit: FitResult | dict[str, Any]) -> str:
     lines.append("These figures come from small proxy networks; the depth law of the big run "
                  "may differ, so check a depth or two at full scale before committing.")
     return "\n".join(lines)
+
+
+def _stuck_lines(r: FitResult) -> list[str]:
+    if not r.stuck_runs:
+        return []
+    parts = []
+    for row in r.per_depth:
+        if row.stuck:
+            seeds = ", ".join(str(s.seed) for s in r.stuck_runs if s.depth == row.depth)
+            parts.append(f"a {row.depth}-layer net got stuck {row.stuck} of "
+                         f"{row.converged + row.censored} times (seed{'s' * (row.stuck > 1)} {seeds})")
+    return [f"Stuck runs: {'; '.join(parts)}. They are left out of the depth law, not counted "
+            "as slow runs."]
+
+
+def _model_lines(r: FitResult) -> list[str]:
+    m = r.models
+    if not m:
+        return []
+    ranked = sorted(m.candidates, key=lambda c: -c.weight)
+    return ["Models by AICc (Akaike weights): "
+            + ", ".join(f"{MODEL_LABELS.get(c.model, c.model)} {c.weight:.2f}" for c in ranked)
+            + f"; the figures below use the {MODEL_LABELS.get(m.chosen, m.chosen)}, their "
+            "intervals refit and reselect the model on every bootstrap replicate."]
 
 
 def _law_lines(r: FitResult) -> list[str]:

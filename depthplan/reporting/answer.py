@@ -17,6 +17,7 @@ import numpy as np
 from ..fitting.cost import cost_basis_of, cost_label, network_words
 from ..fitting.planning import total_cost_curve
 from ..fitting.rates import TUNE_KEY, rate_effect_of, rate_effect_words
+from ..fitting.summary import caveat_sentences
 from . import figures as F
 from .inputs import ReportInputs
 from .markup import EXTRAPOLATED, Block, Words
@@ -313,7 +314,10 @@ def answer_blocks(inp: ReportInputs, w: Words) -> list[Block]:
     if plan["recommended_depth"] is None:
         lead = _why(fit, w)
     blocks: list[Block] = [("h", 2, "The answer", "answer"), ("p", lead, "answer lead")]
-    blocks += _accuracy_blocks(fit, w)
+    blocks += _accuracy_blocks(fit, w)     # first: a worse-generalising depth can overturn the answer
+    caveats = caveat_sentences(fit)
+    if caveats:   # said before the figures: where the data do not settle the answer, stuck runs
+        blocks.append(("p", " ".join(t[0].upper() + t[1:] + "." for t in caveats), "caveats"))
     blocks.append(("ul", [_fewest_updates(fit, w), _compute_optimal(fit, w), _worth_adding(fit, w)]))
     flat = _flat_words(fit)
     if flat:

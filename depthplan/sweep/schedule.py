@@ -197,8 +197,14 @@ def _depths_near_minimum(swept: list[int], k_star: float, ci: list[float] | None
     add = {lo - 1, lo, hi, hi + 1}
     if ci:
         add |= {math.floor(ci[0]), math.ceil(ci[1])}
+    return _two_beyond(swept, add, k_star)
+
+
+def _two_beyond(swept: list[int], add: set[int], k_star: float) -> set[int]:
+    """`add` and more depths past it until at least two (swept or added) lie beyond the reversal depth."""
+    add = set(add)
     beyond = sorted(k for k in swept if k > k_star)
-    nxt = max(swept) if beyond else hi
+    nxt = max(swept) if beyond else math.ceil(k_star)
     while len([k for k in set(swept) | add if k > k_star]) < 2:
         nxt += max(1, nxt // 4)
         add.add(nxt)
@@ -228,6 +234,12 @@ def decide(runs: list[RunResult], policy: AdaptiveConfig, *, round_no: int, cpu_
     integer depths next to the current minimum (and at least two beyond it),
     or, while T still falls, deeper depths; and `policy.extra_seeds` seeds at
     the depth whose T spreads most.
+
+    Where the fit's answer lies in a gap of the swept depths, or its models
+    disagree, the depths added are `planning.next_depths` of the fit: the same
+    rule (`depthplan.fitting.planning.depths_in_gaps`) that the fit reports, so
+    the sweep fills exactly the gaps the summary names, before it narrows the
+    interval around the minimum.
     """
     from ..errors import ConvergenceWarning, DataError
     from ..fitting.assemble import fit_runs
@@ -249,7 +261,8 @@ def decide(runs: list[RunResult], policy: AdaptiveConfig, *, round_no: int, cpu_
         stop = _target_reached(swept, k_star, ci, policy)
         if stop is not None:
             return Decision(True, stop, reversal=summary)
-        add = _depths_near_minimum(swept, k_star, ci)
+        gaps = set((fit.get("planning") or {}).get("next_depths") or [])
+        add = _two_beyond(swept, gaps, k_star) if gaps else _depths_near_minimum(swept, k_star, ci)
     else:  # still falling at the deepest depth (or too little to tell): go deeper
         deepest = max(swept)
         if deepest >= policy.high:
@@ -259,7 +272,9 @@ def decide(runs: list[RunResult], policy: AdaptiveConfig, *, round_no: int, cpu_
     seeds = _extra_seeds(runs, policy)
     if not add and not seeds:
         return Decision(True, "no depth left to add near the minimum", reversal=summary)
-    where = f"near the minimum at K={k_star:.1f}" if status == "observed" and k_star else "beyond the deepest depth"
+    gap_words = ("inside the gaps of the swept depths around"
+                 if status == "observed" and (fit.get("planning") or {}).get("next_depths") else "near")
+    where = f"{gap_words} the minimum at K={k_star:.1f}" if status == "observed" and k_star else "beyond the deepest depth"
     return Decision(False, f"round {round_no}: adding depths {sorted(add)} {where}"
                            + (f", {policy.extra_seeds} seeds at K={next(iter(seeds))}" if seeds else ""),
                     sorted(add), seeds, summary)
