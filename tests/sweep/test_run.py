@@ -123,3 +123,29 @@ def test_two_local_workers_record_every_cell_exactly_once(write_yaml, tmp_path: 
     ids = [cid for cid, _ in SweepStore(local_url(out), "slow").completed_cells()]
     assert len(ids) == 8 and len(set(ids)) == 8
     assert len(_rows(out)) == 8
+
+
+def test_resume_after_a_kill_reclaims_the_dead_workers_cell_at_once(write_yaml, tmp_path: Path) -> None:
+    """The embedded store is opened by this machine's processes only: a cell held by a pid that
+    no longer exists is given back on resume without waiting out the heartbeat grace period."""
+    config = write_yaml(SLOW)
+    out = tmp_path / "res"
+    proc = _start(config, out, "--workers", "1")
+    _wait_for_cells(out, "slow", 1, proc)
+    store = SweepStore(local_url(out), "slow")
+    deadline = time.time() + 120
+    while not any(h.endswith(f":{proc.pid}") for h in store.holders().values()) and time.time() < deadline:
+        time.sleep(0.05)
+    (held,) = [cid for cid, h in store.holders().items() if h.endswith(f":{proc.pid}")]
+    proc.send_signal(signal.SIGKILL)
+    proc.communicate(timeout=60)
+    env = {k: v for k, v in _env().items() if k != "DEPTHPLAN_GRACE_S"}   # the default grace period
+    rerun = subprocess.run([sys.executable, "-m", "depthplan", "-v", "run", str(config), "--out", str(out), "-q",
+                            "--workers", "1"], capture_output=True, text=True, env=env, timeout=300)
+    assert rerun.returncode == 0, rerun.stderr
+    assert f"reclaimed cell {held} at once: its worker" in rerun.stderr
+    failed = [t for t in store.study.get_trials(deepcopy=False) if t.state.name == "FAIL"]
+    assert [t.system_attrs["depthplan_failure"] for t in failed] == [f"reclaimed: its worker {h} is gone"
+                                                                     for h in [failed[0].system_attrs["depthplan_worker"]]]
+    ids = [cid for cid, _ in store.completed_cells()]
+    assert sorted(ids) == sorted(c.cell_id for c in plan_cells(load_config(config)))   # each exactly once
