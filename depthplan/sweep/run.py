@@ -208,7 +208,7 @@ def export_runs(store: SweepStore, folder: Path) -> list[RunResult]:
 # --------------------------------------------------------------------------- one worker
 
 def work(store: SweepStore, cfg: SweepFile, *, progress: Callable[[int], None] | None = None,
-         idle_wait_s: float = 2.0, linger_s: float = 0.0) -> int:
+         idle_wait_s: float = 2.0, linger_s: float = 0.0, keep_going: Callable[[], bool] | None = None) -> int:
     """Claim and train cells until none is waiting or running; return how many this worker stored.
 
     A cell whose training raises is logged and stored as failed (see `SweepStore.fail`),
@@ -217,7 +217,8 @@ def work(store: SweepStore, cfg: SweepFile, *, progress: Callable[[int], None] |
     that died is failed once its heartbeat goes stale and comes back as waiting,
     so this loop waits while others still run. With
     `linger_s`, an idle worker waits that long for newly planned cells (the next
-    round of an adaptive sweep) before it stops.
+    round of an adaptive sweep) before it stops. With `keep_going`, the loop stops between
+    cells once it answers False (a local worker whose `run` was killed).
     """
     from ..train.datasets import load_dataset
     from ..train.loop import train_cell
@@ -229,7 +230,7 @@ def work(store: SweepStore, cfg: SweepFile, *, progress: Callable[[int], None] |
     cost = None if cfg.sweep.early_censor is not None else (lambda spec: guards.expected_cost(cfg, spec))
     done = 0
     idle_since = None
-    while True:
+    while keep_going is None or keep_going():
         claim = store.claim(cost)
         if claim is None:
             store.reap_stale()
@@ -264,9 +265,10 @@ def work(store: SweepStore, cfg: SweepFile, *, progress: Callable[[int], None] |
             continue
         if store.record(claim, results):
             done += 1
+    return done
 
 
-def _worker_process(cfg_dict: dict, url: str, name: str, queue: Any) -> None:
+def _worker_process(cfg_dict: dict, url: str, name: str, queue: Any, parent: int) -> None:
     import torch
 
     torch.set_num_threads(1)
@@ -274,7 +276,8 @@ def _worker_process(cfg_dict: dict, url: str, name: str, queue: Any) -> None:
     cfg = config_from_dict(cfg_dict)
     store = SweepStore(url, name)
     try:
-        work(store, cfg, progress=queue.put)
+        # a worker whose `run` was killed finishes (and stores) its cell, then stops
+        work(store, cfg, progress=queue.put, keep_going=lambda: os.getppid() == parent)
     except KeyboardInterrupt:
         pass
 
@@ -521,7 +524,7 @@ def _run_processes(cfg: SweepFile, store: SweepStore, workers: int, bar: Any) ->
     ctx = mp.get_context("spawn")
     queue = ctx.Queue()
     before = len(store.completed_cells())
-    procs = [ctx.Process(target=_worker_process, args=(cfg.to_dict(), store.url, store.name, queue),
+    procs = [ctx.Process(target=_worker_process, args=(cfg.to_dict(), store.url, store.name, queue, os.getpid()),
                          daemon=True)
              for _ in range(workers)]
     for p in procs:
