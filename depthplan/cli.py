@@ -28,18 +28,22 @@ class _Parser(argparse.ArgumentParser):
 
 def _cmd_check(args: argparse.Namespace) -> int:
     from .config import load_config
+    from .sweep.guards import available_cores, check_memory, plan_size
     from .sweep.run import output_folder, plan_cells
     from .train.datasets import load_dataset
 
     cfg = load_config(args.config)
     data = load_dataset(cfg.data)
     cells = plan_cells(cfg)
+    check_memory(cfg, cells)
+    size = plan_size(cfg, cells, available_cores())
     print(f"{args.config}: ok")
     print(f"  data     {data.description} ({len(data.y_train)} training, {len(data.y_val)} validation rows)")
     print(f"  depths   {', '.join(map(str, cfg.sweep.depths))}; seeds {len(cfg.sweep.seeds)}; "
           f"learning rates {', '.join(f'{lr:g}' for lr in cfg.train.learning_rate)}")
     print(f"  cells    {len(cells)} ({sum(len(c.seeds) for c in cells)} seed runs, "
           f"at most {cfg.train.max_updates} updates each)")
+    print(f"  size     {size.text()}" + ("; `run` asks for --yes" if size.large else ""))
     print(f"  output   {output_folder(cfg, args.out)}")
     return 0
 
@@ -67,7 +71,13 @@ def _train_sweep(config: Path, args: argparse.Namespace) -> Path:
     from .sweep.storage import STORAGE_ENV
     from .urls import redact
 
+    from .sweep.guards import available_cores, check_memory, confirm_size, plan_size
+    from .sweep.run import plan_cells
+
     cfg = load_config(config)
+    cells = plan_cells(cfg)
+    check_memory(cfg, cells)
+    confirm_size(plan_size(cfg, cells, args.workers or available_cores()), args.yes)
     summary = run_sweep(cfg, out=args.out, workers=args.workers, storage=args.storage,
                         show_progress=not args.quiet, plan_only=getattr(args, "plan_only", False))
     if getattr(args, "plan_only", False):
@@ -183,7 +193,7 @@ def _cmd_worker(args: argparse.Namespace) -> int:
     import torch
 
     from .config import config_from_dict
-    from .sweep.run import failed_cells, work
+    from .sweep.run import check_worker_data, failed_cells, work
     from .sweep.storage import STORAGE_ENV, SweepStore
 
     url = args.storage or os.environ.get(STORAGE_ENV)
@@ -192,6 +202,7 @@ def _cmd_worker(args: argparse.Namespace) -> int:
     torch.set_num_threads(1)
     store = SweepStore(url, args.study)
     cfg = config_from_dict(store.meta()["config"])
+    check_worker_data(store, cfg)
     n = work(store, cfg, linger_s=args.linger)
     print(f"worker: {n} cells trained and stored in sweep '{args.study}'")
     _fail_on_failed_cells(failed_cells(store), f"the cells of sweep '{args.study}'",
@@ -213,6 +224,8 @@ def _add_log_flags(parser: argparse.ArgumentParser, *, suppress: bool) -> None:
 
 
 def build_parser() -> argparse.ArgumentParser:
+    from .sweep.guards import MAX_SEED_RUNS
+
     common = argparse.ArgumentParser(add_help=False)
     _add_log_flags(common, suppress=True)
     p = _Parser(prog="depthplan", description="Measure how depth changes updates-to-convergence on small "
@@ -227,8 +240,12 @@ def build_parser() -> argparse.ArgumentParser:
         return sp
 
     def train_opts(sp: argparse.ArgumentParser) -> None:
-        sp.add_argument("--out", metavar="DIR", help="results folder (default: results/<name>)")
-        sp.add_argument("--workers", type=int, default=1, metavar="N", help="local worker processes (default 1)")
+        sp.add_argument("--out", metavar="DIR", help="results folder (default: output.dir, else results/<name> "
+                        "beside the sweep file)")
+        sp.add_argument("--workers", type=int, default=None, metavar="N",
+                        help="local worker processes, one thread each (default: one per available core)")
+        sp.add_argument("--yes", action="store_true",
+                        help=f"start a large plan (over {MAX_SEED_RUNS:,} seed runs or an estimated hour) without asking")
         sp.add_argument("--storage", metavar="URL", help="Optuna storage URL (default: $DEPTHPLAN_STORAGE, "
                         "else a SQLite file in the results folder)")
 
@@ -283,6 +300,30 @@ def _without_secrets(message: str, argv: Sequence[str] | None) -> str:
     return scrub(message, *urls)
 
 
+def os_error_line(exc: OSError) -> str:
+    """One line for an operating-system failure: the path, what happened, and what to do."""
+    import errno
+
+    where = f"{exc.filename}: " if exc.filename else ""
+    what = exc.strerror or type(exc).__name__
+    todo = {errno.ENOSPC: "free some disk space and run the same command again (what is stored is kept)",
+            errno.EDQUOT: "free some of your disk quota and run the same command again (what is stored is kept)",
+            errno.EACCES: "make the folder writable for you, or pass --out DIR",
+            errno.EPERM: "make the folder writable for you, or pass --out DIR",
+            errno.EROFS: "pass --out DIR on a writable disk",
+            errno.ENOMEM: "close other programs or lower model.width / sweep.seeds_per_cell"}
+    return f"{where}{what}; {todo.get(exc.errno, 'check the path and run the same command again')}"
+
+
+def store_failure_line(exc: BaseException) -> str:
+    """One line for a failure inside the sweep store's database layer that no command caught."""
+    from .errors import first_line
+
+    text = first_line(str(exc)) or type(exc).__name__
+    return (f"the sweep store failed: {text}; check that its disk has space and its folder is writable "
+            "(pass --debug for the full traceback), then run the same command again")
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; return the exit status."""
     parser = build_parser()
@@ -310,3 +351,15 @@ def main(argv: Sequence[str] | None = None) -> int:
 
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return 0
+    except OSError as exc:
+        if debug:
+            raise
+        print(f"depthplan: {_without_secrets(os_error_line(exc), argv)}", file=sys.stderr)
+        return 1
+    except Exception as exc:
+        from .sweep.storage import is_db_failure
+
+        if debug or not is_db_failure(exc):
+            raise
+        print(f"depthplan: {_without_secrets(store_failure_line(exc), argv)}", file=sys.stderr)
+        return 1

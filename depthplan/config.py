@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import hashlib
 import json
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -128,7 +128,7 @@ class ProbeConfig:
 
 @dataclass(frozen=True)
 class OutputConfig:
-    dir: str | None = None        # default: results/<name> next to the working directory
+    dir: str | None = None        # default: results/<name> beside the sweep file
     storage: str | None = None    # Optuna storage URL; default: SQLite file in the output folder
 
 
@@ -400,6 +400,9 @@ def parse_config(raw: Any, *, base_dir: Path, where: str = "sweep file") -> Swee
         output=_output(c, top.get("output"), base_dir),
         source_path=str(where),
     )
+    if cfg.output.dir is None and name:
+        # the default folder lies beside the sweep file, whatever the working directory
+        cfg = replace(cfg, output=replace(cfg.output, dir=str((base_dir / "results" / name).resolve())))
     if isinstance(cfg.model.width, tuple) and len(cfg.model.width) < max(cfg.sweep.depths):
         c.add("model.width", f"lists {len(cfg.model.width)} widths but sweep.depths goes to {max(cfg.sweep.depths)}")
     if c.problems:

@@ -198,6 +198,8 @@ def write_bytes_atomic(path: Path, data: bytes) -> Path:
     try:
         tmp.write_bytes(data)
         tmp.replace(path)
+    except OSError as exc:  # name the file the user knows, not the temporary one
+        raise OSError(exc.errno, exc.strerror or str(exc), str(path)) from exc
     finally:
         tmp.unlink(missing_ok=True)
     return path

@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import json
 import os
+import shutil
 import subprocess
 import sys
 from pathlib import Path
@@ -200,3 +201,109 @@ def test_an_overlong_bad_value_is_echoed_shortened(write_yaml) -> None:
     for run in ("x" * (SHOW_MAX + 1), "y" * (SHOW_MAX + 1), "z" * (SHOW_MAX + 1)):
         assert run not in text
     assert "sweep.depths[1]: must be a positive integer, got 'xxx" in text
+
+
+# --------------------------------------------------------------------------- the operating system says no
+# Every such failure reaches the user as one line naming the path (or URL) and what to do, exit
+# status 1 at run time and 2 for a usage mistake, no traceback, no temporary file left behind.
+FIXTURE = Path(__file__).resolve().parent / "data" / "report-folder"
+
+
+def _one_line(proc: subprocess.CompletedProcess, code: int) -> str:
+    assert proc.returncode == code, proc.stdout + proc.stderr
+    assert proc.stderr.count("\n") == 1 and "Traceback" not in proc.stderr, proc.stderr
+    return proc.stderr
+
+
+def test_out_pointing_at_a_file_and_a_sqlite_url_without_file(tiny_config: Path, tmp_path: Path) -> None:
+    a_file = tmp_path / "notes.txt"
+    a_file.write_text("mine\n")
+    err = _one_line(_run_cli(["run", str(tiny_config), "--out", str(a_file), "-q"], tmp_path), 2)
+    assert str(a_file) in err and "not a folder" in err and "--out DIR" in err
+    assert a_file.read_text() == "mine\n"
+    for url in ("sqlite:///", "sqlite://", "sqlite:///:memory:"):
+        err = _one_line(_run_cli(["run", str(tiny_config), "--out", str(tmp_path / "r"), "--storage", url, "-q"],
+                                 tmp_path), 2)
+        assert f"storage {url}: names no database file" in err
+
+
+def _read_only_folder(path: Path, fill_from: Path | None = None):
+    """Make `path` a folder this process cannot write: chmod for a normal user; as root (which
+    chmod does not stop) a tmpfs mounted read-only. Returns the undo, or skips saying why."""
+    path.mkdir()
+    if fill_from is not None:
+        for f in fill_from.iterdir():
+            shutil.copy(f, path / f.name)
+    if os.geteuid() != 0:
+        path.chmod(0o555)
+        return lambda: path.chmod(0o755)
+    if shutil.which("mount") is None:
+        pytest.skip("running as root, where chmod does not stop writes, and `mount` is missing for a read-only tmpfs")
+    proc = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=4m", "tmpfs", str(path)], capture_output=True, text=True)
+    if proc.returncode:
+        pytest.skip(f"running as root, where chmod does not stop writes, and a tmpfs cannot be mounted: {proc.stderr.strip()}")
+    for f in (fill_from.iterdir() if fill_from else ()):
+        shutil.copy(f, path / f.name)
+    subprocess.run(["mount", "-o", "remount,ro", str(path)], check=True)
+    return lambda: subprocess.run(["umount", str(path)], check=False)
+
+
+@pytest.mark.parametrize("command", ["run", "fit", "report"])
+def test_a_read_only_folder_is_one_line(tiny_config: Path, tmp_path: Path, command: str) -> None:
+    folder = tmp_path / "locked"
+    undo = _read_only_folder(folder, None if command == "run" else FIXTURE)
+    try:
+        before = sorted(p.name for p in folder.iterdir())
+        args = {"run": ["run", str(tiny_config), "--out", str(folder / "res"), "-q"],
+                "fit": ["fit", str(folder), "--bootstrap", "20"],
+                "report": ["report", str(folder)]}[command]
+        err = _one_line(_run_cli(args, tmp_path), 1)
+        assert str(folder) in err and ("writable" in err or "--out DIR" in err)
+        assert sorted(p.name for p in folder.iterdir()) == before       # nothing half-written
+    finally:
+        undo()
+
+
+def test_a_full_disk_while_exporting_is_one_line_and_leaves_no_temporary_file(
+        tiny_config: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture) -> None:
+    import errno
+
+    from depthplan.cli import main
+    from depthplan.sweep.storage import SweepStore, local_url
+
+    out = tmp_path / "res"
+    real = Path.write_bytes
+
+    def write_bytes(self: Path, data: bytes) -> int:
+        if self.name == "runs.jsonl.tmp":                 # half the file reaches the disk, then it is full
+            real(self, data[: len(data) // 2])
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+        return real(self, data)
+
+    monkeypatch.setattr(Path, "write_bytes", write_bytes)
+    assert main(["run", str(tiny_config), "--out", str(out), "-q", "--workers", "1"]) == 1
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and f"{out / 'runs.jsonl'}: No space left on device; free some disk space" in err
+    assert not list(out.glob("*.tmp"))
+    assert len(SweepStore(local_url(out), "tiny").results()) == 4   # the trained cells are stored
+    monkeypatch.setattr(Path, "write_bytes", real)
+    assert main(["run", str(tiny_config), "--out", str(out), "-q", "--workers", "1"]) == 0
+    assert "0 cells trained now" in capsys.readouterr().out
+
+
+def test_a_store_failure_mid_sweep_is_one_line_naming_the_store(
+        tiny_config: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture) -> None:
+    from sqlalchemy.exc import OperationalError
+
+    from depthplan.cli import main
+    from depthplan.sweep.storage import SweepStore
+
+    def record(self, claim, results):
+        raise OperationalError("UPDATE trials ...", {}, Exception("database or disk is full"))
+
+    monkeypatch.setattr(SweepStore, "record", record)
+    out = tmp_path / "res"
+    assert main(["run", str(tiny_config), "--out", str(out), "-q", "--workers", "1"]) == 1
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "Traceback" not in err
+    assert f"the sweep store at sqlite:///{out / 'store.db'} failed" in err and "disk is full" in err

@@ -33,7 +33,17 @@ from ..records import (
     write_text_atomic,
 )
 from ..urls import redact
-from .storage import Heartbeat, SweepStore, resolve_url, tuning_storage
+from . import guards
+from .storage import (
+    Heartbeat,
+    SweepStore,
+    check_url,
+    local_url,
+    resolve_url,
+    store_failures,
+    study_names,
+    tuning_storage,
+)
 
 log = logging.getLogger(__name__)
 
@@ -77,8 +87,21 @@ def plan_cells(cfg: SweepFile, state: dict[str, Any] | None = None) -> list[Cell
 
 
 def output_folder(cfg: SweepFile, out: str | Path | None) -> Path:
-    """Where results go: --out, then output.dir, then results/<name> under the working directory."""
+    """Where results go: --out, then output.dir (by default results/<name> beside the sweep file)."""
     return Path(out or cfg.output.dir or Path("results") / cfg.name).expanduser().resolve()
+
+
+def make_folder(folder: Path) -> None:
+    """Create the results folder, or say in one line why it cannot be one.
+
+    Raises:
+        ConfigError: the path (or a parent) is a file.
+    """
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except (FileExistsError, NotADirectoryError):
+        raise ConfigError(f"results folder {folder}: is a file (or lies under one), not a folder; "
+                          "pass --out DIR naming a folder") from None
 
 
 @dataclass
@@ -121,19 +144,37 @@ def open_sweep(cfg: SweepFile, folder: Path, url: str) -> SweepStore:
     Raises:
         StoreError: the store holds a sweep of another config.
     """
+    own_store = url == local_url(folder)
+    if own_store:
+        guards.check_store_beside_exports(folder, folder / "store.db")
+    guards.check_one_sweep(folder, cfg.name, study_names(url) if own_store else None)
+    hashes = guards.data_hashes(cfg)
     store = SweepStore(url, cfg.name, create=True)
     meta = store.meta()
     if "fingerprint" not in meta:
         store.set_meta("fingerprint", cfg.fingerprint())
         store.set_meta("config", cfg.to_dict())
+        store.set_meta("data_sha256", hashes)
         store.set_meta("created", time.strftime("%Y-%m-%dT%H:%M:%S%z"))
-    elif meta["fingerprint"] != cfg.fingerprint():
+        return store
+    if meta.get("data_sha256") is None:   # a store made before data files were fingerprinted
+        if hashes:
+            log.warning("%s: the sweep was stored before data files were fingerprinted; its data is taken "
+                        "as unchanged and fingerprinted now", folder)
+        store.set_meta("data_sha256", hashes)
+    guards.check_data(meta.get("data_sha256"), hashes, str(folder))
+    if meta["fingerprint"] != cfg.fingerprint():
         changed = _differences({k: v for k, v in meta.get("config", {}).items() if k not in ("output", "name")},
                                {k: v for k, v in cfg.to_dict().items() if k not in ("output", "name")})
         what = f" (changed: {', '.join(changed[:5])})" if changed else ""
         raise StoreError(f"{folder} already holds sweep '{cfg.name}' run with a different config{what}; "
                          "pass --out DIR to run the changed sweep in a new folder, or restore the old settings to finish this one")
     return store
+
+
+def check_worker_data(store: SweepStore, cfg: SweepFile) -> None:
+    """A worker refuses a sweep whose data files here differ from those it was planned with."""
+    guards.check_data(store.meta().get("data_sha256"), guards.data_hashes(cfg), f"sweep '{store.name}'")
 
 
 def write_sidecars(cfg: SweepFile, folder: Path, store: SweepStore, state: dict[str, Any] | None = None) -> None:
@@ -144,7 +185,8 @@ def write_sidecars(cfg: SweepFile, folder: Path, store: SweepStore, state: dict[
     """
     write_text_atomic(folder / "config.yaml", dump_config(cfg))
     state = state or _initial_state(cfg)
-    info = {"name": cfg.name, "fingerprint": cfg.fingerprint(), "storage": redact(store.url),
+    info = {"name": cfg.name, "fingerprint": cfg.fingerprint(),
+            "data_sha256": store.meta().get("data_sha256", {}), "storage": redact(store.url),
             "eval_every": cfg.train.eval_every, "max_updates": cfg.train.max_updates,
             "depths": sorted(int(k) for k in state["seeds"]), "seeds": list(cfg.sweep.seeds),
             "seeds_per_depth": {k: len(v) for k, v in state["seeds"].items()},
@@ -166,7 +208,7 @@ def export_runs(store: SweepStore, folder: Path) -> list[RunResult]:
 # --------------------------------------------------------------------------- one worker
 
 def work(store: SweepStore, cfg: SweepFile, *, progress: Callable[[int], None] | None = None,
-         idle_wait_s: float = 2.0, linger_s: float = 0.0) -> int:
+         idle_wait_s: float = 2.0, linger_s: float = 0.0, keep_going: Callable[[], bool] | None = None) -> int:
     """Claim and train cells until none is waiting or running; return how many this worker stored.
 
     A cell whose training raises is logged and stored as failed (see `SweepStore.fail`),
@@ -175,17 +217,21 @@ def work(store: SweepStore, cfg: SweepFile, *, progress: Callable[[int], None] |
     that died is failed once its heartbeat goes stale and comes back as waiting,
     so this loop waits while others still run. With
     `linger_s`, an idle worker waits that long for newly planned cells (the next
-    round of an adaptive sweep) before it stops.
+    round of an adaptive sweep) before it stops. With `keep_going`, the loop stops between
+    cells once it answers False (a local worker whose `run` was killed).
     """
     from ..train.datasets import load_dataset
     from ..train.loop import train_cell
     from .schedule import early_budget
 
     data = load_dataset(cfg.data)
+    # longest expected first, so the last cell does not run alone; with early censoring the
+    # shallow cells go first, as the budgets of the others come from their medians
+    cost = None if cfg.sweep.early_censor is not None else (lambda spec: guards.expected_cost(cfg, spec))
     done = 0
     idle_since = None
-    while True:
-        claim = store.claim()
+    while keep_going is None or keep_going():
+        claim = store.claim(cost)
         if claim is None:
             store.reap_stale()
             counts = store.counts()
@@ -219,9 +265,10 @@ def work(store: SweepStore, cfg: SweepFile, *, progress: Callable[[int], None] |
             continue
         if store.record(claim, results):
             done += 1
+    return done
 
 
-def _worker_process(cfg_dict: dict, url: str, name: str, queue: Any) -> None:
+def _worker_process(cfg_dict: dict, url: str, name: str, queue: Any, parent: int) -> None:
     import torch
 
     torch.set_num_threads(1)
@@ -229,7 +276,8 @@ def _worker_process(cfg_dict: dict, url: str, name: str, queue: Any) -> None:
     cfg = config_from_dict(cfg_dict)
     store = SweepStore(url, name)
     try:
-        work(store, cfg, progress=queue.put)
+        # a worker whose `run` was killed finishes (and stores) its cell, then stops
+        work(store, cfg, progress=queue.put, keep_going=lambda: os.getppid() == parent)
     except KeyboardInterrupt:
         pass
 
@@ -277,6 +325,7 @@ class SweepSummary:
 
 def _train_round(cfg: SweepFile, store: SweepStore, cells: list[CellSpec], workers: int,
                  show_progress: bool, label: str, retry_failed: bool) -> int:
+    store.reclaim_dead_local()
     store.plan(cells, retry_failed=retry_failed)
     store.reap_stale()
     stored = {r.cell_id for r in store.results()}
@@ -285,6 +334,7 @@ def _train_round(cfg: SweepFile, store: SweepStore, cells: list[CellSpec], worke
     todo = [c for c in cells if c.cell_id not in stored]
     total = sum(len(c.seeds) for c in todo) * cfg.train.max_updates
     bar = _progress_bar(total, show_progress, f"{label}: {len(todo)} of {len(cells)} cells to train")
+    workers = min(workers, max(1, len(todo)))
     try:
         if workers == 1:
             return work(store, cfg, progress=bar.update)
@@ -415,7 +465,7 @@ def _summary_notes(cfg: SweepFile, results: list[RunResult], tuned: dict[int, fl
     return notes
 
 
-def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int = 1,
+def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int | None = 1,
               storage: str | None = None, show_progress: bool = True, plan_only: bool = False) -> SweepSummary:
     """Train every cell of the sweep that is not stored yet, and export the runs.
 
@@ -427,7 +477,7 @@ def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int = 1
     Args:
         cfg: the checked sweep file.
         out: output folder (default `output.dir` or `results/<name>`).
-        workers: local worker processes (1: train in this process).
+        workers: local worker processes (1: train in this process; None: one per available core).
         storage: storage URL (default `$DEPTHPLAN_STORAGE`, `output.storage`, or SQLite in the folder).
         show_progress: draw a progress bar on stderr.
         plan_only: enqueue the (first round's) cells for `depthplan worker` processes and return.
@@ -436,13 +486,16 @@ def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int = 1
         StoreError: the folder holds a different sweep, or is in use.
         Interrupted: Ctrl-C; finished cells stay stored and a rerun does the rest.
     """
+    workers = guards.available_cores() if workers is None else workers
     if workers < 1:
         raise ConfigError(f"--workers: must be a positive integer, got {workers}")
+    guards.check_memory(cfg, plan_cells(cfg))
     folder = output_folder(cfg, out)
-    folder.mkdir(parents=True, exist_ok=True)
     url = resolve_url(storage, cfg.output.storage, folder)
+    check_url(url)
+    make_folder(folder)
     t0 = time.perf_counter()
-    with FolderLock(folder / ".lock"):
+    with FolderLock(folder / ".lock"), store_failures(url):
         store = open_sweep(cfg, folder, url)
         write_sidecars(cfg, folder, store)
         state = store.meta().get("schedule") or _initial_state(cfg)
@@ -471,7 +524,7 @@ def _run_processes(cfg: SweepFile, store: SweepStore, workers: int, bar: Any) ->
     ctx = mp.get_context("spawn")
     queue = ctx.Queue()
     before = len(store.completed_cells())
-    procs = [ctx.Process(target=_worker_process, args=(cfg.to_dict(), store.url, store.name, queue),
+    procs = [ctx.Process(target=_worker_process, args=(cfg.to_dict(), store.url, store.name, queue, os.getpid()),
                          daemon=True)
              for _ in range(workers)]
     for p in procs:

@@ -18,6 +18,7 @@ Never imports torch.
 """
 from __future__ import annotations
 
+import contextlib
 import logging
 import os
 import socket
@@ -26,9 +27,9 @@ import time
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Any, Callable, Iterator
 
-from ..errors import StoreError
+from ..errors import ConfigError, RunFailed, StoreError
 from ..urls import redact, scrub, split_url
 from ..records import CellSpec, RunResult
 
@@ -49,7 +50,30 @@ def store_error(what: str, url: str, exc: BaseException) -> StoreError:
     hint = ""
     if parts and parts[1].count("@") > 1 and ":" in parts[1].rsplit("@", 1)[0]:
         hint = " (an '@' inside a password must be written %40)"
+    elif "not a database" in first or "malformed" in first:
+        hint = "; the store is damaged: restore it from a backup, or pass --out DIR to start a new sweep"
     return StoreError(scrub(f"{what} at {redact(url)}: {first}{hint}", url))
+
+
+def is_db_failure(exc: BaseException) -> bool:
+    """An error raised by the database layer under the sweep store (SQLAlchemy, Optuna, a driver)."""
+    return type(exc).__module__.split(".")[0] in ("sqlalchemy", "optuna", "sqlite3", "psycopg2")
+
+
+@contextlib.contextmanager
+def store_failures(url: str) -> Iterator[None]:
+    """Turn a database-layer failure while a sweep runs (disk full, folder made read-only, the
+    server gone) into one `RunFailed` line naming the store; depthplan's own errors pass."""
+    try:
+        yield
+    except Exception as exc:
+        if not is_db_failure(exc):
+            raise
+        text = str(exc).strip()
+        first = text.splitlines()[0] if text else type(exc).__name__
+        raise RunFailed(scrub(f"the sweep store at {redact(url)} failed: {first}; check that its disk has "
+                              "space and its folder is writable, then run the same command again "
+                              "(finished cells stay stored)", url)) from None
 
 
 def tuning_storage(url: str) -> Any:
@@ -206,12 +230,19 @@ class SweepStore:
             warnings.simplefilter("ignore", ExperimentalWarning)
             optuna.storages.fail_stale_trials(self.study)
 
-    def claim(self) -> Claim | None:
-        """Take one waiting cell, or None when none is waiting."""
+    def claim(self, cost: Callable[[CellSpec], float] | None = None) -> Claim | None:
+        """Take one waiting cell, or None when none is waiting.
+
+        With `cost`, the waiting cell of the highest expected cost is taken first (so the
+        longest cell does not start last and run alone); else the first planned.
+        """
         from optuna.exceptions import UpdateFinishedTrialError
         from optuna.trial import TrialState
 
-        for t in self._trials((TrialState.WAITING,)):
+        waiting = self._trials((TrialState.WAITING,))
+        if cost is not None:
+            waiting = sorted(waiting, key=lambda t: -cost(CellSpec.from_dict(t.user_attrs["cell"])))
+        for t in waiting:
             try:
                 ok = self.storage.set_trial_state_values(t._trial_id, state=TrialState.RUNNING)
             except UpdateFinishedTrialError:
@@ -223,6 +254,29 @@ class SweepStore:
                                                    f"{socket.gethostname()}:{os.getpid()}")
                 return Claim(t._trial_id, t.number, CellSpec.from_dict(t.user_attrs["cell"]))
         return None
+
+    def reclaim_dead_local(self) -> list[str]:
+        """Give back at once the running cells held by processes of this machine that no longer exist.
+
+        Only for an embedded (SQLite) store, which only this machine's processes open: a
+        holder "host:pid" with this host name and a pid that is gone is certainly dead, so
+        its cell need not wait out the heartbeat grace period. Returns the cells given back.
+        """
+        from optuna.trial import TrialState
+
+        if not self.url.startswith("sqlite"):
+            return []
+        here = socket.gethostname()
+        out = []
+        for t in self._trials((TrialState.RUNNING,)):
+            host, _, pid = str(t.system_attrs.get("depthplan_worker", "")).rpartition(":")
+            if host != here or not pid.isdigit() or _alive(int(pid)):
+                continue
+            spec = CellSpec.from_dict(t.user_attrs["cell"])
+            self.release(Claim(t._trial_id, t.number, spec), f"reclaimed: its worker {host}:{pid} is gone")
+            log.info("reclaimed cell %s at once: its worker %s:%s is gone", spec.cell_id, host, pid)
+            out.append(spec.cell_id)
+        return out
 
     def record(self, claim: Claim, results: list[RunResult]) -> bool:
         """Store a finished cell; False if it was taken from us meanwhile (then it runs elsewhere)."""
@@ -305,6 +359,40 @@ class SweepStore:
         from optuna.trial import TrialState
 
         return [(t.user_attrs.get("cell_id"), t.number) for t in self._trials((TrialState.COMPLETE,))]
+
+
+def _alive(pid: int) -> bool:
+    """Whether a process with this pid exists on this machine (a zombie counts as gone)."""
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    try:
+        with open(f"/proc/{pid}/stat", encoding="ascii") as fh:
+            return fh.read().rsplit(")", 1)[1].split()[0] != "Z"
+    except (OSError, IndexError):
+        return True
+
+
+def study_names(url: str) -> list[str]:
+    """Names of the studies (sweeps and their tuning searches) in a store."""
+    optuna = _quiet_optuna()
+    return [s.study_name for s in optuna.get_all_study_summaries(_rdb(url, heartbeat=False))]
+
+
+def check_url(url: str) -> None:
+    """Refuse a SQLite URL that names no database file (it would be a private in-memory store).
+
+    Raises:
+        ConfigError: naming the URL and what to write instead.
+    """
+    if url.startswith("sqlite"):
+        path = url.split("://", 1)[1][1:] if "://" in url else ""
+        if not path.split("?")[0] or path.split("?")[0] == ":memory:":
+            raise ConfigError(f"storage {redact(url)}: names no database file; write sqlite:////absolute/path/store.db, "
+                              "or leave the storage out for the results folder's own store")
 
 
 class Heartbeat:

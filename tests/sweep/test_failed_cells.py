@@ -86,15 +86,15 @@ def test_cli_exits_1_on_a_failed_cell_and_0_after_the_retry(
     config = str(write_yaml(SWEEP))
     out = tmp_path / "res"
     calls = _fault_at(monkeypatch, 3)
-    assert main(["run", config, "--out", str(out), "-q"]) == 1
+    assert main(["run", config, "--out", str(out), "-q", "--workers", "1"]) == 1
     printed = capsys.readouterr()
     assert "1 of 3 cells failed:" in printed.out
     assert "depth 3, learning rate 0.05 (fixed): RuntimeError: injected fault at depth 3" in printed.out
     assert "1 of 3 cells failed" in printed.err and "run the same command again" in printed.err
-    assert main(["run", config, "--out", str(out), "-q"]) == 1      # still failing: retried, failed again
+    assert main(["run", config, "--out", str(out), "-q", "--workers", "1"]) == 1      # still failing: retried, failed again
     assert calls.count(3) == 2 and calls.count(1) == 1 and calls.count(2) == 1
     monkeypatch.setattr(loop, "train_cell", REAL_TRAIN_CELL)
-    assert main(["run", config, "--out", str(out), "-q"]) == 0
+    assert main(["run", config, "--out", str(out), "-q", "--workers", "1"]) == 0
     assert "1 cells trained now" in capsys.readouterr().out
     assert len(_rows(out)) == 6
 
@@ -112,7 +112,7 @@ def test_worker_carries_on_past_a_failed_cell_and_exits_1(
     assert "depth 1, learning rate 0.05 (fixed): RuntimeError" in printed.out and "failed" in printed.err
     assert sorted(calls) == [1, 2, 3]
     monkeypatch.setattr(loop, "train_cell", REAL_TRAIN_CELL)
-    assert main(["run", config, "--out", str(out), "-q"]) == 0      # collects the two, retries the failed one
+    assert main(["run", config, "--out", str(out), "-q", "--workers", "1"]) == 0      # collects the two, retries the failed one
     assert "1 cells trained now" in capsys.readouterr().out
     assert sorted(r["depth"] for r in _rows(out)) == ["1", "1", "2", "2", "3", "3"]
 
@@ -121,9 +121,9 @@ def test_bad_input_during_training_still_stops_the_sweep(
         write_yaml, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     config = str(write_yaml(SWEEP))
     out = tmp_path / "res"
-    calls = _fault_at(monkeypatch, 1, ConfigError)
-    assert main(["run", config, "--out", str(out), "-q"]) == 2
-    assert calls == [1]                                              # nothing after the bad cell was trained
+    calls = _fault_at(monkeypatch, 3, ConfigError)                   # the deepest cell is handed out first
+    assert main(["run", config, "--out", str(out), "-q", "--workers", "1"]) == 2
+    assert calls == [3]                                              # nothing after the bad cell was trained
     store = SweepStore(local_url(out), "faulty")
     assert store.failures() == []                                    # given back, not stored as failed
     assert store.counts()["waiting"] == 3
