@@ -243,6 +243,14 @@ def _gradient_snr(stack: _Stack, x: torch.Tensor, onehot: torch.Tensor, rows: np
     return [np.concatenate(layer) for layer in zip(*parts)]
 
 
+def _layer_outputs(stack: _Stack, x: torch.Tensor, act: str) -> list[torch.Tensor]:
+    """Every layer's output on the rows x (n_rows, n_in), for every seed: per hidden layer its
+    activations (n_seeds, n_rows, width), and for the output layer the softmax probabilities
+    (n_seeds, n_rows, n_classes). Input side first, as the other probes."""
+    hs, _, logits = stack.forward(x.expand(stack.n_seeds, -1, -1), act)
+    return hs[1:] + [torch.softmax(logits, dim=1).transpose(1, 2)]
+
+
 def _minibatches(x: torch.Tensor, onehot: torch.Tensor, rows: np.ndarray) -> Iterator[tuple[torch.Tensor, torch.Tensor]]:
     """Each step's inputs (n_seeds, batch, n_in) and class-major one-hot targets (n_seeds, n_classes, batch).
 

@@ -158,8 +158,10 @@ def test_records_probes_and_progress(data) -> None:
         assert r.status == "censored" and r.iterations == 100 and r.eval_steps == (20, 40, 60, 80, 100)
         assert r.n_params == 12 * 8 + 8 + 2 * (8 * 8 + 8) + 8 * 3 + 3
         assert len(r.displacement) == len(r.snr_db) == 4                      # one series per layer
-        assert all(len(d) == len(r.probe_steps) for d in r.displacement + r.snr_db)
-        assert r.probe_steps[0] == 1 and r.probe_steps[-1] == 100
+        assert all(len(d) == len(r.probe_steps) for d in r.displacement)
+        assert all(len(d) == len(r.snr_steps) for d in r.snr_db)
+        assert set(r.snr_steps) <= set(r.probe_steps) and len(r.snr_steps) < len(r.probe_steps)
+        assert r.probe_steps[0] == r.snr_steps[0] == 1 and r.probe_steps[-1] == r.snr_steps[-1] == 100
         assert all(np.diff(d).min() > -1e-6 for d in r.displacement[:1])    # the first layer moves away
         # a value is measured or NaN (below the floor of a 4-draw window), never infinite
         assert not any(math.isinf(v) for d in r.snr_db for v in d)
