@@ -41,7 +41,9 @@ Numbers are JSON numbers, null where undefined; never NaN.
                        compute_optimal_depth{depth, ci, extrapolated, cost_model, note},
                        recommended_depth, recommended_basis}
     diffusion         null, or {n_runs, layers[], late_exponent_median,
-                       transition_step_median, snr_drop_db_median, alpha}
+                       transition_step_median, snr_drop_db_median, alpha, by_depth[],
+                       no_drop_note, late_window{exponent, exponent_ci, alpha, alpha_ci,
+                       verdict, ...}}
     curve             {model, depths, median, lo, hi}: fitted T and its 95 % band
     by_learning_rate  [] or one full fit (without this field) per rate group
     lr_interaction    null, or {primary, slopes[], lr_exponent, message}
@@ -70,6 +72,7 @@ from .depthlaw import (
     summarize_depths,
 )
 from .diffusion import (
+    alpha_check,
     diffusion_summary,
 )
 from .estimators import (
@@ -139,9 +142,10 @@ def _fit_group(runs: list[RunResult], *, save_fraction: float, n_boot: int, seed
     rise_after = span[-1] if reversal["rise_suspected"] else None
     planning = _planning_block(model, point, draws, depths, per_depth, save_fraction, gain,
                                rise_after)
-    diffusion = diffusion_summary(runs)
+    diffusion = diffusion_summary(runs, n_boot=n_boot, seed=seed + 5)
     if diffusion is not None:
         diffusion["alpha"] = pl["alpha"]
+        alpha_check(diffusion["late_window"], pl["alpha"], pl["alpha_ci"])
     fit = {"depth_gain": gain, "depths_swept": depths, "n_runs": len(runs),
            "per_depth": per_depth, "power_law": pl, "reversal": reversal,
            "planning": planning, "diffusion": diffusion,
