@@ -334,9 +334,9 @@ def _late_window_words(w: Words) -> str:
     else:
         exponent = ("Over the last half of each run (steps T/2 to T), the weight displacement grows "
                     f"with exponent {w.num('diffusion.late_window.exponent', '.2f')}"
-                    f"{w.ci('diffusion.late_window.exponent_ci')} (median over runs and layers of "
-                    "least-squares slopes on log-log axes; interval from a bootstrap over seeds "
-                    "that also draws each slope within its own t-interval).")
+                    f"{w.ci('diffusion.late_window.exponent_ci')}: the median over runs and layers "
+                    "of least-squares slopes on log-log axes, its interval from a bootstrap over "
+                    "seeds that also draws each slope within its own t-interval.")
     alpha = ""
     if late.get("alpha") is not None:
         alpha = (f" α from the depth law is {w.num('diffusion.late_window.alpha', '.2f')}"
