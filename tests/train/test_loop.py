@@ -20,7 +20,7 @@ from depthplan.train.models import build_mlp
 from depthplan.records import CellSpec
 from depthplan.train.stacked import _draw_gradients, _Stack
 from depthplan.train.loop import BatchStream, _eval_subset, stacked_weights, train_cell
-from depthplan.train.reference import train_plain
+from depthplan.train.reference import probe_plain, train_plain
 
 NO_PROBES = ProbeConfig(displacement=False, snr=False)
 NEVER = ConvergeConfig(train_loss_below=1e-12)
@@ -234,3 +234,30 @@ def test_memory_at_256_seeds_depth_8_and_2000_rows_stays_under_1_gb() -> None:
     peak = json.loads(out.stdout.strip().splitlines()[-1])
     grown_mb = (peak["after_kb"] - peak["before_kb"]) / 1024
     assert peak["after_kb"] / 1024 < 1024, f"peak {peak['after_kb'] / 1024:.0f} MB (training added {grown_mb:.0f} MB)"
+
+
+def test_probes_end_at_each_seeds_own_t_on_digits_and_match_the_plain_loop() -> None:
+    # A tiny real run: scikit-learn's digits (UCI, 1,797 8x8 images; DESIGN.md section 3), seeds
+    # trained together that converge at different T. Each seed's probes must end at its own T
+    # (the schedule before ended up to a third of T early), and the plain per-seed loop
+    # (nn.Sequential + torch.optim, reference) must record the same probe steps and displacements.
+    data = load_dataset(DataConfig(source="digits"))
+    model, spec = ModelConfig(width=16), CellSpec(depth=1, seeds=(0, 1, 2), learning_rate=0.1)
+    train = TrainConfig(learning_rate=(0.1,), max_updates=2000, eval_every=10,
+                        converge_when=ConvergeConfig(train_loss_below=0.5))
+    probes = ProbeConfig(n_points=12, snr_window=4)
+    results = train_cell(spec, model, train, probes, data, dtype=torch.float64)
+    assert all(r.status == "converged" for r in results) and len({r.iterations for r in results}) > 1
+    for r in results:
+        assert r.probe_steps[-1] == r.snr_steps[-1] == r.iterations < train.max_updates
+        assert r.probe_steps[0] == 1 and list(r.probe_steps) == sorted(set(r.probe_steps))
+        assert sum(s >= r.iterations / 2 for s in r.probe_steps) >= 3       # a late window to fit
+    threads = torch.get_num_threads()
+    torch.set_num_threads(1)           # as train_cell does: a second thread on a busy core is slower
+    try:
+        plain = probe_plain(spec, model, train, probes, data, dtype=torch.float64)
+    finally:
+        torch.set_num_threads(threads)
+    for r, p in zip(results, plain):
+        assert (p["status"], p["iterations"], tuple(p["probe_steps"])) == (r.status, r.iterations, r.probe_steps)
+        np.testing.assert_allclose(r.displacement, p["displacement"], rtol=1e-9)
