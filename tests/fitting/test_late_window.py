@@ -64,17 +64,19 @@ def test_window_slope_and_interval_are_the_ols_ones() -> None:
 @pytest.mark.parametrize("drift, exponent, other", [(0.0, 0.5, 1.0), (1.0, 1.0, 0.5)])
 def test_random_walk_and_drift_exponents_are_recovered_within_the_interval(drift, exponent, other) -> None:
     # known answer (Feller vol. 1): 1/2 for the walk, 1 for the drift (which the walk's sqrt(t DIM)
-    # barely disturbs at t >= 750: DIM t^2 against DIM t). Over 20 seeded repetitions of 5 seeds
+    # barely disturbs at t >= 750: DIM t^2 against DIM t). Over 20 seeded repetitions of 8 seeds
     # the 95 % bootstrap interval must hold the true exponent at least 17 times (binomial(20, 0.95):
-    # fewer than 17 has probability 1.6 %) and never the other exponent.
+    # fewer than 17 has probability 1.6 %) and never the other exponent. (With 5 seeds the
+    # percentile interval held the walk's 1/2 in about 90 % of repetitions, measured: a percentile
+    # bootstrap over few seeds is a little narrow.)
     held = 0
     for rep in range(20):
-        runs = _walk_runs(np.random.default_rng(100 + rep), 5, drift)
+        runs = _walk_runs(np.random.default_rng(100 + rep), 8, drift)
         late = diffusion_summary(runs, n_boot=400, seed=rep)["late_window"]
         lo, hi = late["exponent_ci"]
         held += lo <= exponent <= hi
         assert not lo <= other <= hi
-        assert late["n_fitted"] == late["n_series"] == 5 and late["n_points_median"] >= 6
+        assert late["n_fitted"] == late["n_series"] == 8 and late["n_points_median"] >= 6
     assert held >= 17, held
 
 
