@@ -37,9 +37,8 @@ from ..records import CellSpec, RunResult
 from .convergence import Criterion, verdict
 from .datasets import Dataset
 from .models import count_params, init_weights
-from ..information import binned_information
 from .probes import displacement, probe_grids
-from .stacked import _evaluate, _gradient_snr, _layer_outputs, _minibatches, _Optimizer, _Stack
+from .stacked import _evaluate, _gradient_snr, _information, _minibatches, _Optimizer, _Stack
 
 ProgressFn = Callable[[int], None]
 
@@ -200,9 +199,7 @@ class _CellSetup:
                               for k in rows])
             snr = _gradient_snr(sub, t.x, t.onehot, draws, act)
         if sparse and probes.information:
-            outs = _layer_outputs(sub, t.x_info, act)           # per layer (n_seeds, rows, width)
-            info = [[binned_information(o[i].numpy(), t.y_info, probes.bins) for o in outs]
-                    for i in range(len(rows))]
+            info = _information(sub, t.x_info, t.y_info, act, probes.bins)
         for i, k in enumerate(rows):
             probe_log[active[k]].append((step, [float(d[i]) for d in disp],
                                          None if snr is None else [float(s[i]) for s in snr],

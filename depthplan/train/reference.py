@@ -44,7 +44,8 @@ def probe_plain(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: 
     at the dense probe grid up to its end and at the end itself (what `train_cell` records).
 
     Returns:
-        Per seed {"iterations", "status", "probe_steps", "displacement" (per layer)}.
+        Per seed {"iterations", "status", "probe_steps", "displacement" (per layer), "net" (the
+        network as it ended)}.
     """
     grid = set(probe_grids(train.max_updates, probes.n_points)[0])
     return [_plain_seed(spec, model, train, data, seed, train.max_updates, dtype, True, grid)
@@ -94,4 +95,4 @@ def _plain_seed(spec: CellSpec, model: ModelConfig, train: TrainConfig, data: Da
             status = ended
             break
     return {"losses": losses, "iterations": step, "status": status, "probe_steps": steps,
-            "displacement": [[d[i] for d in disp] for i in range(len(linears))]}
+            "displacement": [[d[i] for d in disp] for i in range(len(linears))], "net": net}
