@@ -297,6 +297,8 @@ def late_window_ci(groups: Sequence[tuple[np.ndarray, np.ndarray, np.ndarray]], 
         warnings.simplefilter("ignore", RuntimeWarning)
         medians = np.nanmedian(draws, axis=1)
     medians = medians[np.isfinite(medians)]
+    if not len(medians):
+        return float(np.nanmedian(pooled)), math.nan, math.nan
     tail = 50 * (1 - level)
     lo, hi = np.percentile(medians, [tail, 100 - tail])
     return float(np.nanmedian(pooled)), float(lo), float(hi)

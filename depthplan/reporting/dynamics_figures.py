@@ -288,8 +288,8 @@ def plot_late_exponent_by_depth(fit: dict[str, Any], ax: Axes) -> list[Artist]:
             out.append(ax.axhspan(ci[0], ci[1], color=VERMILLION, alpha=0.15, lw=0, zorder=0))
         out.append(ax.axhline(late["alpha"], color=VERMILLION, lw=1.2,
                               label=f"α from the depth law: {late['alpha']:.2f}{ci_words(ci, '.2f')}"))
-    what = "over the last half of each run" if window else "after the transition"
-    depth_panel(ax, fit["depths_swept"], f"growth exponent of ‖W_t − W_0‖ {what}",
+    what = "steps T/2 to T" if window else "after the transition"
+    depth_panel(ax, fit["depths_swept"], f"exponent of ‖W_t − W_0‖ ({what})",
                 "displacement exponent per depth", log=False)
     return out
 
