@@ -122,8 +122,26 @@ class TrainConfig:
 class ProbeConfig:
     displacement: bool = True
     snr: bool = True
-    n_points: int = 24        # log-spaced probe steps between 1 and max_updates
+    n_points: int = 24        # log-spaced SNR probe steps between 1 and max_updates (displacement: 4x denser)
     snr_window: int = 16      # minibatch gradients drawn at the current weights per probe step
+    # mutual information of each layer with input and label (off unless set; None keeps the
+    # fingerprints of sweeps stored before these keys existed)
+    information: bool | None = None
+    information_bins: int | None = None     # equal-width bins per unit; None: INFORMATION_BINS
+
+    @property
+    def any(self) -> bool:
+        """Whether any probe is recorded."""
+        return bool(self.displacement or self.snr or self.information)
+
+    @property
+    def bins(self) -> int:
+        """Bins of the information probe's binning estimator."""
+        return self.information_bins or INFORMATION_BINS
+
+
+#: Default bin count of the information probe (`probes.information_bins`).
+INFORMATION_BINS = 30
 
 
 @dataclass(frozen=True)
@@ -348,6 +366,8 @@ def _probes(c: Checker, raw: Any) -> ProbeConfig:
         snr=c.take(d, "probes", "snr", as_flag, dflt.snr),
         n_points=c.take(d, "probes", "n_points", as_int(2), dflt.n_points),
         snr_window=c.take(d, "probes", "snr_window", as_int(2), dflt.snr_window),
+        information=c.take(d, "probes", "information", as_flag, None) or None,   # false: as unset
+        information_bins=c.take(d, "probes", "information_bins", as_int(2), None),
     )
 
 

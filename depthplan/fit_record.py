@@ -18,7 +18,7 @@ from typing import Any, ClassVar, Mapping, TypeVar
 from .records import ReversalStatus
 
 __all__ = ["ABSENT", "Record", "FitResult", "FitGroup", "PowerLaw", "Reversal", "Planning",
-           "PlannedDepth", "Diffusion", "DiffusionLayer", "DiffusionDepth", "Curve", "DepthRow", "Bootstrap",
+           "PlannedDepth", "Diffusion", "DiffusionLayer", "DiffusionDepth", "LateWindow", "Curve", "DepthRow", "Bootstrap",
            "GroupLabel", "FitInput", "LrInteraction", "Transfer", "TransferTarget", "LackOfFit", "ModelFit",
            "Models", "StuckRun"]
 
@@ -271,6 +271,26 @@ class DiffusionLayer(Record):
     early_exponent: float | None = _absent()
     transition_step: float | None = _absent()
     snr_drop_db: float | None = _absent()
+    late_window_exponent: float | None = _absent()
+    late_window_exponent_ci: list[float] | None = _absent()
+    late_window_n_points: float | None = _absent()
+
+
+@dataclass(frozen=True)
+class LateWindow(Record):
+    """The displacement's growth exponent over the last half of the runs, set against alpha."""
+
+    start_fraction: float = _absent()
+    exponent: float | None = _absent()
+    exponent_ci: list[float] | None = _absent()
+    ci_method: str = _absent()
+    n_boot: int = _absent()
+    n_series: int = _absent()
+    n_fitted: int = _absent()
+    n_points_median: float | None = _absent()
+    alpha: float | None = _absent()
+    alpha_ci: list[float | None] | None = _absent()
+    verdict: str = _absent()
 
 
 @dataclass(frozen=True)
@@ -296,6 +316,9 @@ class DiffusionDepth(Record):
     late_exponent: float | None = _absent()
     late_exponent_lo: float | None = _absent()
     late_exponent_hi: float | None = _absent()
+    late_window_exponent: float | None = _absent()
+    late_window_exponent_lo: float | None = _absent()
+    late_window_exponent_hi: float | None = _absent()
 
 
 @dataclass(frozen=True)
@@ -308,6 +331,7 @@ class Diffusion(Record):
     snr_drop_db_median: float | None = _absent()
     by_depth: list[DiffusionDepth] = _absent()
     no_drop_note: str = _absent()
+    late_window: LateWindow = _absent()
     alpha: float | None = _absent()
 
 

@@ -103,6 +103,10 @@ RUN_COLUMNS = (
 )
 
 
+#: The per-layer probe series of a `RunResult`.
+PROBE_SERIES = ("displacement", "snr_db", "information_xt", "information_ty")
+
+
 @dataclass(frozen=True)
 class RunResult:
     """What one seed run at one depth and learning rate measured."""
@@ -128,10 +132,15 @@ class RunResult:
     # curves: evaluation steps with the full-training-set loss at each
     eval_steps: tuple[int, ...] = ()
     train_loss: tuple[float, ...] = ()
-    # probes: log-spaced steps; one list per layer (input side first)
+    # probes: log-spaced steps ending at the run's last step; one list per layer (input side first).
+    # displacement is at every probe step; the SNR and the information at `snr_steps`, a sparser
+    # subset (empty in files written before it existed, whose SNR is at every probe step)
     probe_steps: tuple[int, ...] = ()
     displacement: tuple[tuple[float, ...], ...] = ()
     snr_db: tuple[tuple[float, ...], ...] = ()
+    snr_steps: tuple[int, ...] = ()
+    information_xt: tuple[tuple[float, ...], ...] = ()     # I(X;T) in bits, binned (`probes.information`)
+    information_ty: tuple[tuple[float, ...], ...] = ()     # I(T;Y) in bits
     extra: dict[str, Any] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
@@ -139,6 +148,15 @@ class RunResult:
         # (a store written by another version) stays a string, and the fit leaves such runs out
         object.__setattr__(self, "status", _as_enum(RunStatus, self.status))
         object.__setattr__(self, "lr_mode", _as_enum(RateMode, self.lr_mode))
+
+    @property
+    def snr_probe_steps(self) -> tuple[int, ...]:
+        """The steps of `snr_db` and the information series."""
+        return self.snr_steps or self.probe_steps
+
+    def series_steps(self, key: str) -> tuple[int, ...]:
+        """The steps a probe series (`displacement`, `snr_db`, `information_xt`, ...) is measured at."""
+        return self.probe_steps if key == "displacement" else self.snr_probe_steps
 
     def to_dict(self) -> dict[str, Any]:
         """Plain JSON-ready dict (tuples become lists, NaN becomes None)."""
@@ -149,9 +167,9 @@ class RunResult:
         """Inverse of `to_dict`; unknown keys are ignored."""
         names = {f.name for f in fields(cls)}
         kw = {k: v for k, v in d.items() if k in names}
-        for key in ("eval_steps", "train_loss", "probe_steps"):
+        for key in ("eval_steps", "train_loss", "probe_steps", "snr_steps"):
             kw[key] = tuple(_num(v) for v in kw.get(key, ()) or ())
-        for key in ("displacement", "snr_db"):
+        for key in PROBE_SERIES:
             kw[key] = tuple(tuple(_num(v) for v in row) for row in kw.get(key, ()) or ())
         for key in ("final_train_loss", "final_train_accuracy", "validation_accuracy"):
             kw[key] = _num(kw.get(key))

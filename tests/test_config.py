@@ -82,6 +82,9 @@ def test_defaults_round_trip_through_the_resolved_config(tiny_config: Path) -> N
     ("data: {source: csv, path: nowhere.csv, label: y}", r"data\.path: no such file"),
     ("data: {validation_fraction: 0.95}", r"data\.validation_fraction: must be a number >= 0 and <= 0\.9"),
     ("probes: {snr: maybe}", r"probes\.snr: must be true or false"),
+    ("probes: {information: 1}", r"probes\.information: must be true or false"),
+    ("probes: {information_bins: 1}", r"probes\.information_bins: must be an integer >= 2, got 1"),
+    ("probes: {information_bin: 20}", r"unknown key 'information_bin' in probes \(did you mean 'information_bins'\?\)"),
     ("output: {storage: 'postgresql://u:secret@db/x'}", r"output\.storage: must not hold credentials"),
     ("colour: red", r"unknown key 'colour'"),
 ])
@@ -134,3 +137,13 @@ def test_an_unset_setting_does_not_change_the_fingerprint(write_yaml, monkeypatc
     monkeypatch.setattr(SweepFile, "to_dict",
                         lambda self: {**plain(self), "train": {**plain(self)["train"], "later_setting": None}})
     assert cfg.fingerprint() == before
+
+
+def test_information_probe_is_off_by_default_and_leaves_old_fingerprints(write_yaml) -> None:
+    # common practice: a key added later, left unset, must not change the fingerprint of a stored sweep
+    plain = load_config(write_yaml("name: a\n", "a.yaml"))
+    off = load_config(write_yaml("name: a\nprobes: {information: false}\n", "b.yaml"))
+    on = load_config(write_yaml("name: a\nprobes: {information: true, information_bins: 12}\n", "c.yaml"))
+    assert not plain.probes.information and plain.probes.bins == 30
+    assert off.fingerprint() == plain.fingerprint()
+    assert on.probes.information and on.probes.bins == 12 and on.fingerprint() != plain.fingerprint()

@@ -51,7 +51,9 @@ Numbers are JSON numbers, null where undefined; never NaN.
     models            {criterion, chosen, depths_used, n_runs, candidates[]}
     stuck_runs[]      {depth, seed, budget}
     diffusion         null, or {n_runs, layers[], late_exponent_median,
-                       transition_step_median, snr_drop_db_median, alpha}
+                       transition_step_median, snr_drop_db_median, alpha, by_depth[],
+                       no_drop_note, late_window{exponent, exponent_ci, alpha, alpha_ci,
+                       verdict, ...}}
     curve             {model, depths, median, lo, hi}: fitted T and its 95 % band
     rate_effect       null, or {learning_rate, exponent, exponent_ci, direction, fold, ...}
     by_learning_rate  [] or one full fit (without this field) per rate group
@@ -83,6 +85,7 @@ from .depthlaw import (
 )
 from .cost import COST_BASES, network_of
 from .diffusion import (
+    alpha_check,
     diffusion_summary,
 )
 from .estimators import (
@@ -176,9 +179,10 @@ def _fit_group(runs: list[RunResult], *, save_fraction: float, n_boot: int, seed
     planning.update(_answer_block(planning, reversal, depths, {
         c["model"]: c for c in models["candidates"]}, gain,
         capped=rise_after is not None and planning["recommended_depth"] == rise_after))
-    diffusion = diffusion_summary(runs)
+    diffusion = diffusion_summary(runs, n_boot=n_boot, seed=seed + 5)
     if diffusion is not None:
         diffusion["alpha"] = pl["alpha"]
+        alpha_check(diffusion["late_window"], pl["alpha"], pl["alpha_ci"])
     curve = _curve_block("selected", point, draws, k_lo, k_hi)
     curve["model"] = sel["chosen"]
     single = lack_of_fit(d.subset(d.K <= span[-1]), np.array([0.0, pl["intercept"], pl["slope"],

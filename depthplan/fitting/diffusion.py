@@ -1,18 +1,22 @@
-"""Drift-to-diffusion measures of the probe series (numpy only, no torch).
+"""Drift-to-diffusion measures of the probe series (numpy and scipy only, no torch).
 
 The trainer records, per layer, the weight displacement ||W_t - W_0||_F and
-the gradient signal-to-noise ratio at log-spaced steps (`depthplan.probes`).
-Here `growth_exponent`, `transition_step` and `snr_drop_db` reduce one such
-series to a number, and `diffusion_summary` gives the `diffusion` block of
-fit.json: their medians over seeds per (depth, layer), and per depth (`by_depth`)
-with their between-seed spread.
+the gradient signal-to-noise ratio at log-spaced steps up to each run's end
+(`depthplan.train.probes`). Here `growth_exponent`, `late_window_fit`,
+`transition_step` and `snr_drop_db` reduce one such series to a number, and
+`diffusion_summary` gives the `diffusion` block of fit.json: their medians over
+seeds per (depth, layer), per depth (`by_depth`) with their between-seed spread,
+and the late exponent over the last half of the runs with an interval
+(`late_window`), which `alpha_check` sets against alpha from the depth law.
 """
 from __future__ import annotations
 
 import math
+import warnings
 from typing import Any, Sequence
 
 import numpy as np
+from scipy import stats
 
 from ..records import RunResult
 
@@ -46,6 +50,47 @@ def growth_exponent(steps: Sequence[float], values: Sequence[float], *,
     tc = tk - tk.mean()
     denom = float((tc ** 2).sum())
     return float((tc * (vk - vk.mean())).sum() / denom) if denom > 0 else math.nan
+
+
+#: The late window of a run ending at step T is [LATE_START * T, T].
+LATE_START = 0.5
+#: Fewest probes in a late window for a slope with an interval (one residual degree of freedom).
+LATE_MIN_POINTS = 3
+
+
+def late_window_fit(steps: Sequence[float], values: Sequence[float], end: float, *,
+                    start_fraction: float = LATE_START, level: float = 0.95) -> dict[str, float]:
+    """Log-log slope of `values` over the probes in [start_fraction * end, end], with its t-interval.
+
+    Ordinary least squares of log value on log step over the window's points; the interval is
+    slope +/- t(level; n - 2) * se, se the slope's standard error from the residuals (the usual
+    OLS interval, as `scipy.stats.linregress` gives its stderr). About 1 for steady drift and 1/2
+    for a random walk (Feller vol. 1).
+
+    Returns:
+        {"slope", "se", "lo", "hi", "n_points"}: NaN (n_points as counted) when fewer than
+        `LATE_MIN_POINTS` usable points fall in the window.
+    """
+    t = np.asarray(steps, float)
+    v = np.asarray(values, float)[:len(t)]
+    t = t[:len(v)]
+    ok = np.isfinite(t) & np.isfinite(v) & (t > 0) & (v > 0)
+    ok &= (t >= start_fraction * end * (1 - 1e-12)) & (t <= end * (1 + 1e-12))
+    n = int(ok.sum())
+    out = {"slope": math.nan, "se": math.nan, "lo": math.nan, "hi": math.nan, "n_points": n}
+    if n < LATE_MIN_POINTS:
+        return out
+    x, y = np.log(t[ok]), np.log(v[ok])
+    xc = x - x.mean()
+    sxx = float((xc ** 2).sum())
+    if not sxx > 0:
+        return out
+    slope = float((xc * (y - y.mean())).sum() / sxx)
+    resid = y - y.mean() - slope * xc
+    se = math.sqrt(float((resid ** 2).sum()) / (n - 2) / sxx)
+    half = float(stats.t.ppf(0.5 + level / 2, n - 2)) * se
+    out.update(slope=slope, se=se, lo=slope - half, hi=slope + half)
+    return out
 
 
 def _snr_levels(steps: Sequence[float], snr_db: Sequence[float],
@@ -113,7 +158,7 @@ NO_DROP_DB = 2.0
 
 #: The measures `by_depth` summarises, in the order they are written.
 DEPTH_MEASURES = ("snr_first_db", "snr_last_db", "snr_drop_db", "transition_step",
-                  "early_exponent", "late_exponent")
+                  "early_exponent", "late_exponent", "late_window_exponent")
 
 
 def _end_snr(steps: Sequence[float], snr: Sequence[float]) -> tuple[float, float]:
@@ -132,16 +177,20 @@ def _layer_measures(r: RunResult, layer: int) -> dict[str, float]:
     """The probe measures of one layer of one run (NaN: undefined, -inf: below the SNR floor)."""
     disp = r.displacement[layer]
     snr = r.snr_db[layer] if layer < len(r.snr_db) else ()
-    t_tr = transition_step(r.probe_steps, snr) if len(snr) else math.nan
+    snr_steps = r.snr_probe_steps
+    t_tr = transition_step(snr_steps, snr) if len(snr) else math.nan
     has_tr = math.isfinite(t_tr)
     early_steps = [s for s in r.probe_steps if not has_tr or s <= t_tr]
-    first, last = _end_snr(r.probe_steps, snr) if len(snr) else (math.nan, math.nan)
+    first, last = _end_snr(snr_steps, snr) if len(snr) else (math.nan, math.nan)
+    late = late_window_fit(r.probe_steps, disp, float(r.iterations))
     return {"snr_first_db": first, "snr_last_db": last,
-            "snr_drop_db": snr_drop_db(r.probe_steps, snr) if len(snr) else math.nan,
+            "snr_drop_db": snr_drop_db(snr_steps, snr) if len(snr) else math.nan,
             "transition_step": t_tr,
             "early_exponent": growth_exponent(early_steps, disp[:len(early_steps)],
                                               late_fraction=1.0),
-            "late_exponent": growth_exponent(r.probe_steps, disp, start=t_tr if has_tr else None)}
+            "late_exponent": growth_exponent(r.probe_steps, disp, start=t_tr if has_tr else None),
+            "late_window_exponent": late["slope"], "late_window_se": late["se"],
+            "late_window_n_points": float(late["n_points"])}
 
 
 def _ranked(values: Sequence[float], q: float) -> float:
@@ -210,34 +259,155 @@ def no_drop_note(by_depth: Sequence[dict[str, Any]], threshold_db: float = NO_DR
     return f"From K = {rows[i]['depth']} on, the gradient SNR does not drop {why}."
 
 
-def diffusion_summary(runs: Sequence[RunResult]) -> dict[str, Any] | None:
+#: Draws of the late-window bootstrap (`late_window_ci`) unless the fit asks for another number.
+LATE_BOOT = 1000
+#: How the late-window interval is made (fit.json `diffusion.late_window.ci_method`).
+LATE_CI_METHOD = "seeds_within_depth+ols_t"
+
+
+def late_window_ci(groups: Sequence[tuple[np.ndarray, np.ndarray, np.ndarray]], *, n_boot: int = LATE_BOOT,
+                   seed: int = 0, level: float = 0.95) -> tuple[float, float, float]:
+    """Median of late-window slopes with a two-level percentile bootstrap interval.
+
+    Args:
+        groups: per depth (slopes, standard errors, residual degrees of freedom), each
+            (n_runs, n_layers); NaN where a series has no slope.
+
+    Each draw resamples the runs of every depth with replacement (the bootstrap over seeds
+    within depth of the depth law), moves each drawn slope by its own OLS error
+    (se * a Student t variate with its degrees of freedom) and takes the median over every
+    drawn (run, layer); the interval is the central `level` of those medians.
+
+    Returns:
+        (median of the slopes, lo, hi); NaN without any slope.
+    """
+    pooled = np.concatenate([g[0].ravel() for g in groups]) if groups else np.zeros(0)
+    if not np.isfinite(pooled).any():
+        return math.nan, math.nan, math.nan
+    rng = np.random.default_rng([int(seed), 0x1A7E])
+    parts = []
+    for slopes, ses, dfs in groups:
+        n_runs = len(slopes)
+        pick = rng.integers(0, n_runs, (n_boot, n_runs))
+        s, e, d = slopes[pick], ses[pick], dfs[pick]              # (n_boot, n_runs, n_layers)
+        noise = rng.standard_t(np.where(np.isfinite(d) & (d > 0), d, 1.0))
+        parts.append((s + np.where(np.isfinite(e), e, 0.0) * noise).reshape(n_boot, -1))
+    draws = np.concatenate(parts, axis=1)
+    with np.errstate(all="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        medians = np.nanmedian(draws, axis=1)
+    medians = medians[np.isfinite(medians)]
+    if not len(medians):
+        return float(np.nanmedian(pooled)), math.nan, math.nan
+    tail = 50 * (1 - level)
+    lo, hi = np.percentile(medians, [tail, 100 - tail])
+    return float(np.nanmedian(pooled)), float(lo), float(hi)
+
+
+def _late_groups(fits: Sequence[tuple[int, int, int, dict[str, float]]],
+                 keep: Any = None) -> list[tuple[np.ndarray, np.ndarray, np.ndarray]]:
+    """(slopes, ses, dfs) arrays per depth from (depth, run, layer, measures) rows passing `keep`."""
+    by: dict[int, dict[int, dict[int, dict[str, float]]]] = {}
+    for k, run, layer, m in fits:
+        if keep is None or keep(k, layer):
+            by.setdefault(k, {}).setdefault(run, {})[layer] = m
+    out = []
+    for k, per in sorted(by.items()):
+        layers = sorted({j for ms in per.values() for j in ms})
+        arr = np.full((3, len(per), len(layers)), np.nan)
+        for i, ms in enumerate(per.values()):
+            for c, j in enumerate(layers):
+                if j in ms:
+                    m = ms[j]
+                    arr[:, i, c] = (m["late_window_exponent"], m["late_window_se"],
+                                    m["late_window_n_points"] - 2)
+        out.append((arr[0], arr[1], arr[2]))
+    return out
+
+
+def _interval(lo: float, hi: float) -> list[float] | None:
+    return [lo, hi] if math.isfinite(lo) and math.isfinite(hi) else None
+
+
+def late_window_block(fits: Sequence[tuple[int, int, int, dict[str, float]]], *, n_boot: int = LATE_BOOT,
+                      seed: int = 0) -> dict[str, Any]:
+    """fit.json's `diffusion.late_window` from (depth, run, layer, measures) rows (verdict unset)."""
+    med, lo, hi = late_window_ci(_late_groups(fits), n_boot=n_boot, seed=seed)
+    n_pts = [m["late_window_n_points"] for *_, m in fits]
+    return {"start_fraction": LATE_START, "exponent": _number(med), "exponent_ci": _interval(lo, hi),
+            "ci_method": LATE_CI_METHOD, "n_boot": n_boot,
+            "n_series": len(fits),
+            "n_fitted": sum(math.isfinite(m["late_window_exponent"]) for *_, m in fits),
+            "n_points_median": _number(float(np.median(n_pts))) if n_pts else None,
+            "alpha": None, "alpha_ci": None, "verdict": "not_enough_points"}
+
+
+#: Verdicts of `alpha_check`.
+VERDICTS = ("agree", "disagree", "not_enough_points", "no_alpha")
+
+
+def alpha_check(late: dict[str, Any], alpha: float | None, alpha_ci: Sequence[float | None] | None) -> str:
+    """Set the late-window exponent against alpha from the depth law; returns and stores the verdict.
+
+    "agree" when the two 95 % intervals overlap (alpha alone where it has no interval), "disagree"
+    when they do not, "not_enough_points" when no series has a late-window slope with an interval
+    (fewer than `LATE_MIN_POINTS` probes in every run's last half), "no_alpha" when the depth law
+    gives no alpha (no depth gain).
+    """
+    late["alpha"], late["alpha_ci"] = alpha, (list(alpha_ci) if alpha_ci else None)
+    ci = late.get("exponent_ci")
+    if late.get("exponent") is None or not ci:
+        verdict = "not_enough_points"
+    elif alpha is None:
+        verdict = "no_alpha"
+    else:
+        a_lo, a_hi = alpha_ci if alpha_ci else (alpha, alpha)
+        a_lo = alpha if a_lo is None else a_lo
+        a_hi = math.inf if a_hi is None else a_hi
+        verdict = "agree" if ci[0] <= a_hi and a_lo <= ci[1] else "disagree"
+    late["verdict"] = verdict
+    return verdict
+
+
+def diffusion_summary(runs: Sequence[RunResult], *, n_boot: int = LATE_BOOT,
+                      seed: int = 0) -> dict[str, Any] | None:
     """Per (depth, layer) medians over seeds of the probe measures; None without probes.
 
-    For each layer: the SNR transition step and drop, and the displacement's
-    growth exponent before (early) and after (late) the transition. `by_depth`
-    gives the same measures (and the SNR at the first and last probe) per depth
-    with their between-seed spread, and `no_drop_note` the depth from which on
-    the SNR no longer drops.
+    For each layer: the SNR transition step and drop, the displacement's growth exponent before
+    (early) and after (late) the transition, and over the last half of each run
+    (`late_window_exponent`, with a bootstrap interval over seeds). `by_depth` gives the same
+    measures (and the SNR at the first and last probe) per depth with their between-seed spread,
+    `no_drop_note` the depth from which on the SNR no longer drops, and `late_window` the
+    late-window exponent over every run and layer with its interval (compared with alpha by
+    `alpha_check`).
     """
     rows: list[tuple[int, int, dict[str, float]]] = []
-    cells: dict[tuple[int, int], list[tuple[float, float, float, float]]] = {}
+    fits: list[tuple[int, int, int, dict[str, float]]] = []
+    cells: dict[tuple[int, int], list[tuple[float, float, float, float, float, float]]] = {}
     for i, r in enumerate(runs):
         if len(r.probe_steps) < 4 or not r.displacement:
             continue
         for layer in range(len(r.displacement)):
             m = _layer_measures(r, layer)
             rows.append((r.depth, i, m))
+            if r.status != "diverged":
+                fits.append((r.depth, i, layer, m))
             cells.setdefault((r.depth, layer), []).append(
-                (m["late_exponent"], m["early_exponent"], m["transition_step"], m["snr_drop_db"]))
+                (m["late_exponent"], m["early_exponent"], m["transition_step"], m["snr_drop_db"],
+                 m["late_window_exponent"], m["late_window_n_points"]))
     if not cells:
         return None
     layers = []
     for (k, layer), vals in sorted(cells.items()):
         arr = np.array(vals, float)
         med = [float(np.nanmedian(col)) if np.isfinite(col).any() else None for col in arr.T]
+        _, lo, hi = late_window_ci(_late_groups(fits, lambda kk, jj: (kk, jj) == (k, layer)),
+                                   n_boot=n_boot, seed=seed + 1)
         layers.append({"depth": k, "layer": layer, "n_runs": len(vals), "late_exponent": med[0],
                        "early_exponent": med[1], "transition_step": med[2],
-                       "snr_drop_db": med[3]})
+                       "snr_drop_db": med[3], "late_window_exponent": med[4],
+                       "late_window_exponent_ci": _interval(lo, hi),
+                       "late_window_n_points": med[5]})
 
     def overall(key: str) -> float | None:
         v = [row[key] for row in layers if row[key] is not None]
@@ -250,4 +420,5 @@ def diffusion_summary(runs: Sequence[RunResult]) -> dict[str, Any] | None:
             "early_exponent_median": overall("early_exponent"),
             "transition_step_median": overall("transition_step"),
             "snr_drop_db_median": overall("snr_drop_db"),
-            "by_depth": by_depth, "no_drop_note": no_drop_note(by_depth)}
+            "by_depth": by_depth, "no_drop_note": no_drop_note(by_depth),
+            "late_window": late_window_block(fits, n_boot=n_boot, seed=seed)}

@@ -351,13 +351,33 @@ def _transfer_lines(t: Transfer | None) -> list[str]:
     return lines
 
 
+#: How each verdict of the late-window check reads (fit.json `diffusion.late_window.verdict`).
+VERDICT_WORDS = {"agree": "agree (the intervals overlap)",
+                 "disagree": "disagree (the intervals do not overlap)",
+                 "not_enough_points": "not comparable: fewer than 3 probes in the last half of every run",
+                 "no_alpha": "not comparable: the depth law gives no alpha"}
+
+
+def _late_window_text(diff: Any) -> str:
+    """'late-phase displacement exponent (steps T/2 to T) 0.52 (95 % interval ...) against alpha ...'."""
+    late = diff.late_window
+    if not late:        # a file written before the late window existed
+        alpha = (f"against alpha {diff.alpha:.2f} from the depth law"
+                 if diff.alpha is not None else "(no alpha from the depth law to compare)")
+        return f"late-phase displacement exponent {diff.late_exponent_median:.2f} {alpha}"
+    exponent = ("not measured" if late.exponent is None
+                else f"{late.exponent:.2f}{_ci_text(late.exponent_ci)}")
+    alpha = ("no alpha from the depth law" if late.alpha is None
+             else f"alpha {late.alpha:.2f}{_ci_text(late.alpha_ci)} from the depth law")
+    return (f"displacement exponent over the last half of each run (T/2 to T) {exponent}, "
+            f"against {alpha}: {VERDICT_WORDS.get(late.verdict, late.verdict)}")
+
+
 def _probe_line(r: FitResult) -> str:
     diff = r.diffusion
-    if not diff or diff.late_exponent_median is None:
+    if not diff or (diff.late_exponent_median is None and not diff.late_window):
         return ""
-    alpha = (f"against alpha {diff.alpha:.2f} from the depth law"
-             if diff.alpha is not None else "(no alpha from the depth law to compare)")
-    text = f"Probes: late-phase displacement exponent {diff.late_exponent_median:.2f} {alpha}"
+    text = f"Probes: {_late_window_text(diff)}"
     if diff.snr_drop_db_median is not None:
         text += f"; gradient SNR falls {diff.snr_drop_db_median:.0f} dB"
     if diff.transition_step_median is not None:

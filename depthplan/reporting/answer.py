@@ -346,17 +346,54 @@ def _accuracy_blocks(fit: dict[str, Any], w: Words) -> list[Block]:
 
 
 def dynamics_words(w: Words) -> str:
-    """The probe cross-check in one sentence (or '' without probes)."""
+    """The probe cross-check in a few sentences (or '' without probes)."""
     d = w.get("diffusion")
-    if not d or d.get("late_exponent_median") is None:
+    if not d or (d.get("late_exponent_median") is None and not d.get("late_window")):
         return ""
-    parts = (("late_exponent_median", ".2f", "Over all probed depths and layers, the late-phase "
-              "growth exponent of the displacement has median {}"),
-             ("alpha", ".2f", " (α from the depth law: {})"),
-             ("snr_drop_db_median", ".1f", "; the gradient SNR falls by a median {} dB"),
+    text = _late_window_words(w) if d.get("late_window") else _old_late_words(w)
+    parts = (("snr_drop_db_median", ".1f", " The gradient SNR falls by a median {} dB"),
              ("transition_step_median", ".0f", ", around step {}"))
-    return "".join(text.format(w.num(f"diffusion.{key}", fmt))
-                   for key, fmt, text in parts if d.get(key) is not None) + "." + _depth_drop_words(w)
+    snr = "".join(t.format(w.num(f"diffusion.{key}", fmt)) for key, fmt, t in parts if d.get(key) is not None)
+    return text + (snr + "." if snr else "") + _depth_drop_words(w)
+
+
+def _old_late_words(w: Words) -> str:
+    """The sentence of files written before the late window existed: two numbers side by side."""
+    d = w.get("diffusion")
+    text = ("Over all probed depths and layers, the late-phase growth exponent of the displacement "
+            f"has median {w.num('diffusion.late_exponent_median', '.2f')}")
+    if d.get("alpha") is not None:
+        text += f" (α from the depth law: {w.num('diffusion.alpha', '.2f')})"
+    return text + "."
+
+
+#: The verdict of the late-window check in words (fit.json `diffusion.late_window.verdict`).
+_VERDICT_SENTENCES = {
+    "agree": "The two agree: their 95 % intervals overlap.",
+    "disagree": "The two disagree: their 95 % intervals do not overlap, so the depth law and the "
+                "weights' own late motion tell different stories here.",
+    "not_enough_points": "They cannot be compared: no run has 3 probes or more in its last half.",
+    "no_alpha": "There is no α to compare: the depth law gives no gain from depth.",
+}
+
+
+def _late_window_words(w: Words) -> str:
+    """The late-window exponent with its interval, α with its interval, and the verdict."""
+    late = w.get("diffusion.late_window")
+    if late.get("exponent") is None:
+        exponent = ("The growth exponent of the weight displacement over the last half of each "
+                    "run (steps T/2 to T) is not measured: too few probes fall there.")
+    else:
+        exponent = ("Over the last half of each run (steps T/2 to T), the weight displacement grows "
+                    f"with exponent {w.num('diffusion.late_window.exponent', '.2f')}"
+                    f"{w.ci('diffusion.late_window.exponent_ci')}: the median over runs and layers "
+                    "of least-squares slopes on log-log axes, its interval from a bootstrap over "
+                    "seeds that also draws each slope within its own t-interval.")
+    alpha = ""
+    if late.get("alpha") is not None:
+        alpha = (f" α from the depth law is {w.num('diffusion.late_window.alpha', '.2f')}"
+                 f"{w.ci('diffusion.late_window.alpha_ci')}.")
+    return f"{exponent}{alpha} {_VERDICT_SENTENCES.get(late.get('verdict'), '')}"
 
 
 def _depth_drop_words(w: Words) -> str:

@@ -147,21 +147,23 @@ def plot_loss_curves(runs: Sequence[RunResult], ax: Axes, *,
 def layer_medians(runs: Sequence[RunResult], key: str) -> tuple[np.ndarray, np.ndarray]:
     """(probe steps, values (layers, steps)): per layer, the median over seeds at each probe step.
 
-    A step is kept while at least half the runs still reach it (runs stop at their T).
+    Runs share their grid steps and each adds its own last step T, so steps are matched by value;
+    a step is kept while at least half the runs have it (runs stop at their T).
     """
-    runs = [r for r in runs if getattr(r, key) and r.probe_steps]
+    runs = [r for r in runs if getattr(r, key) and r.series_steps(key)]
     if not runs:
         return np.zeros(0), np.zeros((0, 0))
     n_layers = min(len(getattr(r, key)) for r in runs)
-    longest = max(runs, key=lambda r: len(r.probe_steps))
-    steps = np.asarray(longest.probe_steps, float)
-    values = np.full((len(runs), n_layers, len(steps)), np.nan)     # NaN: the run stopped before
+    steps = np.array(sorted({s for r in runs for s in r.series_steps(key)}), float)
+    where = {s: i for i, s in enumerate(steps)}
+    values = np.full((len(runs), n_layers, len(steps)), np.nan)     # NaN: the run has no probe there
     for i, r in enumerate(runs):
+        cols = [where[float(s)] for s in r.series_steps(key)]
         for j in range(n_layers):
-            row = np.asarray(getattr(r, key)[j], float)[:len(steps)]
+            row = np.asarray(getattr(r, key)[j], float)[:len(cols)]
             # a probe the run reached but could not measure (an SNR below the window's floor)
             # ranks below every measured value, so it pulls the median down instead of vanishing
-            values[i, j, :len(row)] = np.where(np.isnan(row), -np.inf, row)
+            values[i, j, cols[:len(row)]] = np.where(np.isnan(row), -np.inf, row)
     reached = ~np.isnan(values[:, 0, :])
     keep = reached.sum(0) * 2 >= len(runs)
     with np.errstate(all="ignore"):
@@ -275,12 +277,61 @@ def plot_snr_drop_by_depth(fit: dict[str, Any], ax: Axes) -> list[Artist]:
 
 
 def plot_late_exponent_by_depth(fit: dict[str, Any], ax: Axes) -> list[Artist]:
-    """Median late-phase growth exponent of the displacement per depth, with guides at 1 and 1/2."""
-    out = _depth_errorbars(fit, ax, "late_exponent")
+    """Median late-phase growth exponent of the displacement per depth, guides at 1 and 1/2, and
+    alpha from the depth law with its interval.
+
+    The exponent over the last half of each run (`late_window_exponent`) where fit.json has it,
+    else (older files) the one after the transition.
+    """
+    rows = (fit.get("diffusion") or {}).get("by_depth") or []
+    window = any(r.get("late_window_exponent") is not None for r in rows)
+    out = _depth_errorbars(fit, ax, "late_window_exponent" if window else "late_exponent")
     out.append(ax.axhline(1.0, color="black", ls="--", lw=1.0, label="1: drift (D ∝ t)"))
     out.append(ax.axhline(0.5, color="black", ls=":", lw=1.4, label="1/2: diffusion (D ∝ √t)"))
-    depth_panel(ax, fit["depths_swept"], "late growth exponent of ‖W_t − W_0‖",
+    late = (fit.get("diffusion") or {}).get("late_window") or {}
+    if late.get("alpha") is not None:
+        ci = late.get("alpha_ci")
+        if ci and None not in ci:
+            out.append(ax.axhspan(ci[0], ci[1], color=VERMILLION, alpha=0.15, lw=0, zorder=0))
+        out.append(ax.axhline(late["alpha"], color=VERMILLION, lw=1.2,
+                              label=f"α from the depth law: {late['alpha']:.2f}{ci_words(ci, '.2f')}"))
+    what = "steps T/2 to T" if window else "after the transition"
+    depth_panel(ax, fit["depths_swept"], f"exponent of ‖W_t − W_0‖ ({what})",
                 "displacement exponent per depth", log=False)
+    return out
+
+
+def has_information(runs: Sequence[RunResult]) -> bool:
+    """Whether any run carries the information probe's series."""
+    return any(r.information_xt and r.information_ty for r in runs)
+
+
+def plot_information_plane(runs: Sequence[RunResult], ax: Axes, *, depth: int) -> list[Artist]:
+    """Each layer's path in the (I(X;T), I(T;Y)) plane at one depth, medians over seeds per probe step.
+
+    Circles mark the first probe, squares the last; the path runs through the probe steps in order.
+    """
+    at = [r for r in runs if r.depth == depth]
+    _, xt = layer_medians(at, "information_xt")
+    _, ty = layer_medians(at, "information_ty")
+    n = min(len(xt), len(ty))
+    out: list[Artist] = []
+    for j in range(n):
+        colour = ordered_colour(j, n)
+        ok = np.isfinite(xt[j]) & np.isfinite(ty[j])
+        x, y = xt[j][ok], ty[j][ok]
+        if not len(x):
+            continue
+        out += ax.plot(x, y, color=colour, lw=1.1, marker=".", ms=3)
+        out.append(ax.scatter(x[:1], y[:1], s=28, marker="o", facecolor="white", edgecolor=colour, zorder=4))
+        out.append(ax.scatter(x[-1:], y[-1:], s=28, marker="s", facecolor=colour, edgecolor="black",
+                              linewidth=0.6, zorder=4))
+    out.append(ax.scatter([], [], s=28, marker="o", facecolor="white", edgecolor=GREY, label="first probe"))
+    out.append(ax.scatter([], [], s=28, marker="s", facecolor=GREY, edgecolor="black", label="last probe"))
+    ax.set_xlabel("I(X;T), bits (binned)")
+    ax.set_ylabel("I(T;Y), bits (binned)")
+    ax.set_title(f"information plane per layer, K = {depth}")
+    ax.legend(loc="lower right")
     return out
 
 

@@ -290,9 +290,34 @@ def _depth_dynamics_figure(inp: ReportInputs) -> _Drawn | None:
             "or more, minimum to maximum with fewer). Left: how far the gradient signal-to-noise "
             "ratio falls from its early level (first fifth of the probes) to its late level (last "
             "fifth), in decibels. Right: the log-log growth exponent of the weight displacement "
-            "after the transition, against the guides 1 (drift) and 1/2 (diffusion). "
+            "over the last half of each run (steps T/2 to T; after the transition in files written "
+            "before that measure existed), against the guides 1 (drift) and 1/2 (diffusion) and "
+            "α from the depth law with its 95 % interval. "
             + (inp.fit.get("diffusion") or {}).get("no_drop_note", ""),
             "SNR drop and late displacement exponent against the number of hidden layers.")
+
+
+def _information_figure(inp: ReportInputs) -> _Drawn | None:
+    """The information plane at the dynamics depth, only when the runs carry the information probe."""
+    depth = _dynamics_depth(inp)
+    at = [r for r in inp.primary_runs if r.depth == depth]
+    if depth is None or not TF.has_information(at):
+        return None
+    fig, (ax,) = F.new_figure(6.4, 4.4)
+    TF.plot_information_plane(inp.primary_runs, ax, depth=depth)
+    n_layers = min(len(r.information_xt) for r in at if r.information_xt)
+    TF.layer_colourbar(fig, [ax], n_layers)
+    bins = "the configured number of" if inp.config is None else f"{inp.config.probes.bins}"
+    return (fig, "information", f"Information plane per layer at K = {depth}",
+            f"Each layer's path through the plane of I(X;T), the information its binned output T "
+            f"keeps about the input, and I(T;Y), about the label, at the SNR probe steps (median "
+            f"over seeds; the output layer is its softmax). Binning estimator on a fixed batch of "
+            f"training rows: each unit's output cut into {bins} equal-width bins over the layer's "
+            "range at that step, each row's binned vector one symbol; I(X;T) = H(T) because T is a "
+            "function of X. Such estimates depend on the bin count and the batch: once every row is "
+            "its own symbol they read log2(rows) and H(Y) whatever the layer does (Saxe et al. "
+            "2018, ICLR, \"On the information bottleneck theory of deep learning\").",
+            "Paths of the hidden layers and the output in the information plane.")
 
 
 def _tuning_figure(inp: ReportInputs) -> _Drawn | None:
@@ -308,7 +333,7 @@ def _tuning_figure(inp: ReportInputs) -> _Drawn | None:
 
 
 _FIGURES = (_scaling_figure, _rates_figure, _cost_figure, _loss_figure, _dynamics_figure,
-            _depth_dynamics_figure, _tuning_figure)
+            _depth_dynamics_figure, _information_figure, _tuning_figure)
 
 
 def draw_figures(inp: ReportInputs, folder: Path) -> list[FigureFile]:
@@ -348,7 +373,7 @@ def build_blocks(inp: ReportInputs, figs: list[FigureFile]) -> list[Block]:
     if "cost" in by_name:
         section("Cost per depth", "cost", "cost")
     if "loss" in by_name or "dynamics" in by_name or "dynamics-by-depth" in by_name:
-        section("Training dynamics", "dynamics", "loss", "dynamics", "dynamics-by-depth")
+        section("Training dynamics", "dynamics", "loss", "dynamics", "dynamics-by-depth", "information")
     blocks.append(("h", 2, "Per depth", "per-depth"))
     blocks += depth_table_blocks(inp, w)
     if inp.rounds:

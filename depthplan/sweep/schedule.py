@@ -22,7 +22,7 @@ from dataclasses import dataclass, field
 from typing import Any, Callable
 
 from ..config import AdaptiveConfig, SweepFile, TuneConfig
-from ..records import CellSpec, RateMode, RunResult, rate_group
+from ..records import PROBE_SERIES, CellSpec, RateMode, RunResult, rate_group
 
 log = logging.getLogger(__name__)
 
@@ -114,8 +114,9 @@ def tune_depth(cfg: SweepFile, storage: Any, depth: int, *, progress: Callable[[
         except BaseException:
             study.tell(trial, state=TrialState.FAIL)
             raise
-        trial.set_user_attr("runs", [r.to_dict() | {"train_loss": [], "eval_steps": [], "displacement": [],
-                                                    "snr_db": [], "probe_steps": []} for r in runs])
+        trial.set_user_attr("runs", [r.to_dict() | {"train_loss": [], "eval_steps": [], "probe_steps": [],
+                                                    "snr_steps": [], **{k: [] for k in PROBE_SERIES}}
+                                     for r in runs])
         study.tell(trial, tuning_objective(runs, cfg.train.max_updates, tune.penalty))
     return float(study.best_params["learning_rate"])
 

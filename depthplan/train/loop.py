@@ -37,8 +37,8 @@ from ..records import CellSpec, RunResult
 from .convergence import Criterion, verdict
 from .datasets import Dataset
 from .models import count_params, init_weights
-from .probes import displacement, log_spaced_steps
-from .stacked import _evaluate, _gradient_snr, _minibatches, _Optimizer, _Stack
+from .probes import displacement, probe_grids
+from .stacked import _evaluate, _gradient_snr, _information, _minibatches, _Optimizer, _Stack
 
 ProgressFn = Callable[[int], None]
 
@@ -127,7 +127,8 @@ def _eval_subset(n_rows: int, eval_rows: int | None) -> torch.Tensor | None:
 
 @dataclass
 class _CellTensors:
-    """A cell's data as tensors: training set with one-hot targets, evaluation rows, validation set."""
+    """A cell's data as tensors: training set with one-hot targets, evaluation rows, validation set,
+    and the fixed batch of the information probe."""
 
     x: torch.Tensor
     onehot: torch.Tensor
@@ -135,6 +136,13 @@ class _CellTensors:
     y_eval: torch.Tensor
     x_val: torch.Tensor
     y_val: torch.Tensor
+    x_info: torch.Tensor
+    y_info: np.ndarray
+
+
+#: Rows of the information probe's fixed batch (at most): enough for the binned entropies of a
+#: few classes, few enough that the binning stays cheap.
+INFORMATION_ROWS = 1000
 
 
 def _cell_tensors(data: Dataset, dtype: torch.dtype, eval_rows: int | None) -> _CellTensors:
@@ -146,32 +154,56 @@ def _cell_tensors(data: Dataset, dtype: torch.dtype, eval_rows: int | None) -> _
     onehot = F.one_hot(y, data.n_classes).to(dtype)
     subset = _eval_subset(x.shape[0], eval_rows)
     x_eval, y_eval = (x, y) if subset is None else (x[subset], y[subset])
-    return _CellTensors(x, onehot, x_eval, y_eval, x_val, y_val)
+    info = _eval_subset(x.shape[0], INFORMATION_ROWS)
+    x_info, y_info = (x, y) if info is None else (x[info], y[info])
+    return _CellTensors(x, onehot, x_eval, y_eval, x_val, y_val, x_info, y_info.numpy())
+
+
+#: One probe of one seed: (step, displacement per layer, SNR per layer or None,
+#: (I(X;T), I(T;Y)) per layer or None). SNR and information are measured on the sparse grid only.
+Probe = tuple[int, list[float], "list[float] | None", "list[tuple[float, float]] | None"]
 
 
 @dataclass
 class _CellSetup:
-    """A cell's trainable state: stacked weights, their initial copy, minibatch streams, optimiser, probes."""
+    """A cell's trainable state: stacked weights, their initial copy, minibatch streams, optimiser, probes.
+
+    `dense_at` holds the displacement's probe steps, `sparse_at` (a subset) those where the gradient
+    SNR and the information are measured too; every seed is also probed at its own last step.
+    """
 
     stack: _Stack
     w0: list[torch.Tensor]
     streams: list[BatchStream]
     opt: _Optimizer
     probe_rngs: list[np.random.Generator]
-    probe_at: set[int]
+    dense_at: set[int]
+    sparse_at: set[int]
 
-    def probe(self, step: int, active: list[int], t: _CellTensors, probes: ProbeConfig, act: str,
-              probe_log: list[list[tuple[int, list[float], list[float]]]]) -> None:
-        """Log each active seed's layer displacements and gradient SNR at `step`."""
-        disp = [displacement(w.detach().numpy(), w_init.detach().numpy()) for w, w_init in zip(self.stack.ws, self.w0)]
-        snr = [np.full(len(active), math.nan)] * len(self.w0)
-        if probes.snr:
+    def probe(self, step: int, rows: list[int], active: list[int], t: _CellTensors, probes: ProbeConfig,
+              act: str, probe_log: list[list[Probe]], *, sparse: bool) -> None:
+        """Log the seeds at stack `rows` (positions `active[k]`): layer displacements, and with
+        `sparse` their gradient SNR and information at `step`."""
+        every = len(rows) == self.stack.n_seeds
+        pick = None if every else torch.tensor(rows, dtype=torch.long)
+        ws = self.stack.ws if every else [w.index_select(0, pick) for w in self.stack.ws]
+        w0 = self.w0 if every else [w.index_select(0, pick) for w in self.w0]
+        disp = [displacement(w.detach().numpy(), w_init.detach().numpy()) for w, w_init in zip(ws, w0)]
+        sub = self.stack if every else _Stack(ws, [b.index_select(0, pick) for b in self.stack.bs])
+        snr: list[np.ndarray] | None = None
+        info: list[list[tuple[float, float]]] | None = None
+        if sparse and probes.snr:
             n_rows = t.x.shape[0]
-            rows = np.stack([self.probe_rngs[a].integers(0, n_rows, (probes.snr_window, self.streams[a].batch))
-                             for a in active])
-            snr = _gradient_snr(self.stack, t.x, t.onehot, rows, act)
-        for k, a in enumerate(active):
-            probe_log[a].append((step, [float(d[k]) for d in disp], [float(s[k]) for s in snr]))
+            draws = np.stack([self.probe_rngs[active[k]].integers(0, n_rows, (probes.snr_window,
+                                                                               self.streams[active[k]].batch))
+                              for k in rows])
+            snr = _gradient_snr(sub, t.x, t.onehot, draws, act)
+        if sparse and probes.information:
+            info = _information(sub, t.x_info, t.y_info, act, probes.bins)
+        for i, k in enumerate(rows):
+            probe_log[active[k]].append((step, [float(d[i]) for d in disp],
+                                         None if snr is None else [float(s[i]) for s in snr],
+                                         None if info is None else info[i]))
 
     def keep(self, rows: torch.Tensor) -> None:
         """Drop finished seeds from the batch: keep the given rows of weights, state and initial weights."""
@@ -188,8 +220,10 @@ def _cell_setup(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: 
     streams = [BatchStream(s, n_rows, train.batch_size) for s in spec.seeds]
     opt = _Optimizer(train, spec.learning_rate, stack, streams[0].batch)
     probe_rngs = [np.random.default_rng([int(s), 0x5A1]) for s in spec.seeds]
-    probe_at = set(log_spaced_steps(budget, probes.n_points)) if (probes.displacement or probes.snr) else set()
-    return _CellSetup(stack, w0, streams, opt, probe_rngs, probe_at)
+    dense, sparse = probe_grids(budget, probes.n_points) if probes.any else ([], [])
+    sparse_at = set(sparse)
+    dense_at = set(dense) if probes.displacement else set(sparse)
+    return _CellSetup(stack, w0, streams, opt, probe_rngs, dense_at, sparse_at)
 
 
 def _validation_of(stack: _Stack, done: list[int], t: _CellTensors, act: str) -> list[float]:
@@ -212,7 +246,7 @@ def _train_cell(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: 
 
     active = list(range(len(seeds)))                   # positions in `seeds` still training
     curves: list[list[tuple[int, float]]] = [[] for _ in seeds]
-    probe_log: list[list[tuple[int, list[float], list[float]]]] = [[] for _ in seeds]
+    probe_log: list[list[Probe]] = [[] for _ in seeds]
     seat_time = np.zeros(len(seeds))
     ended: dict[int, dict] = {}
     step = 0
@@ -222,12 +256,11 @@ def _train_cell(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: 
         n = min(train.eval_every - step % train.eval_every, budget - step)
         rows = np.stack([cell.streams[a].take(n) for a in active])       # (n_active, n, batch)
         for xb, target in _minibatches(t.x, t.onehot, rows):
-            if step in cell.probe_at:
-                cell.probe(step, active, t, probes, act, probe_log)
+            if step in cell.dense_at:
+                cell.probe(step, list(range(len(active))), active, t, probes, act, probe_log,
+                           sparse=step in cell.sparse_at)
             cell.opt.step(xb, target, act)
             step += 1
-        if step in cell.probe_at and step == budget:
-            cell.probe(step, active, t, probes, act, probe_log)
         loss, acc = _evaluate(cell.stack, t.x_eval, t.y_eval, act)
         val_acc = np.full(len(active), math.nan)
         if criterion.needs_validation and len(t.y_val):
@@ -239,6 +272,9 @@ def _train_cell(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: 
             (keep if v is None else done).append(k)
             if v is not None:
                 ended[a] = {"status": v, "iterations": step, "loss": float(loss[k]), "acc": float(acc[k])}
+        ending = [k for k in done if ended[active[k]]["status"] != "diverged"]
+        if ending and cell.dense_at:       # each seed's probes end at its own last step T
+            cell.probe(step, ending, active, t, probes, act, probe_log, sparse=True)
         seat_time[active] += (time.perf_counter() - t_block) / len(active)
         if done:
             if len(t.y_val):
@@ -255,8 +291,7 @@ def _train_cell(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: 
 
 def _cell_results(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: ProbeConfig, data: Dataset,
                   ended: dict[int, dict], seat_time: np.ndarray, elapsed: float,
-                  curves: list[list[tuple[int, float]]],
-                  probe_log: list[list[tuple[int, list[float], list[float]]]]) -> list[RunResult]:
+                  curves: list[list[tuple[int, float]]], probe_log: list[list[Probe]]) -> list[RunResult]:
     """Every seed's `RunResult`, the cell's setup time (`elapsed` less the seats' time) shared evenly."""
     setup = (elapsed - seat_time.sum()) / len(spec.seeds)
     return [_result(spec, model, train, probes, data, seed, ended[a], float(seat_time[a] + setup),
@@ -264,9 +299,26 @@ def _cell_results(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes
             for a, seed in enumerate(spec.seeds)]
 
 
+def _probe_fields(probes: ProbeConfig, plog: list[Probe], n_layers: int) -> dict:
+    """One seed's probe series as `RunResult` fields: displacement at every probe step, SNR and
+    information at the sparse ones (`snr_steps`)."""
+    if not plog:
+        return {}
+    sparse = [p for p in plog if p[2] is not None or p[3] is not None]
+    out: dict = {"probe_steps": tuple(p[0] for p in plog)}
+    if probes.displacement:
+        out["displacement"] = tuple(tuple(p[1][i] for p in plog) for i in range(n_layers))
+    out["snr_steps"] = tuple(p[0] for p in sparse)
+    if probes.snr:
+        out["snr_db"] = tuple(tuple(p[2][i] for p in sparse) for i in range(n_layers))
+    if probes.information:
+        out["information_xt"] = tuple(tuple(p[3][i][0] for p in sparse) for i in range(n_layers))
+        out["information_ty"] = tuple(tuple(p[3][i][1] for p in sparse) for i in range(n_layers))
+    return out
+
+
 def _result(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: ProbeConfig, data: Dataset,
-            seed: int, end: dict, wall: float, curve: list[tuple[int, float]],
-            plog: list[tuple[int, list[float], list[float]]]) -> RunResult:
+            seed: int, end: dict, wall: float, curve: list[tuple[int, float]], plog: list[Probe]) -> RunResult:
     """One seed's `RunResult` from what its cell recorded."""
     widths = model.widths(spec.depth)
     n_layers = len(widths) + 1
@@ -283,7 +335,5 @@ def _result(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: Prob
         extra={"network": {"n_inputs": data.n_features, "n_classes": data.n_classes,
                            "widths": list(widths), "batch_size": train.batch_size}},
         eval_steps=tuple(s for s, _ in curve), train_loss=tuple(v for _, v in curve),
-        probe_steps=tuple(p[0] for p in plog),
-        displacement=tuple(tuple(p[1][i] for p in plog) for i in range(n_layers)) if probes.displacement and plog else (),
-        snr_db=tuple(tuple(p[2][i] for p in plog) for i in range(n_layers)) if probes.snr and plog else (),
+        **_probe_fields(probes, plog, n_layers),
     )

@@ -16,6 +16,31 @@ def log_spaced_steps(max_updates: int, n_points: int) -> list[int]:
     return sorted({int(round(v)) for v in raw})
 
 
+#: Displacement probes per interval of the gradient-SNR schedule: the displacement costs one
+#: subtraction per layer, an SNR probe `snr_window` extra gradients, so the displacement is
+#: recorded this many times more densely (about 6 points per doubling of t at the defaults),
+#: enough for a slope with an interval over the last half of a run.
+DENSE_FACTOR = 4
+
+
+def probe_grids(max_updates: int, n_points: int, dense: int = DENSE_FACTOR) -> tuple[list[int], list[int]]:
+    """(dense steps, SNR steps): log-spaced steps from 1 to `max_updates`, the second a subset.
+
+    The SNR grid has about `n_points` steps; the dense grid `dense` times as many, on the same
+    log-spaced positions refined (so every SNR step is a dense step). A run probes both grids up
+    to its own end T and adds T itself (`run_probe_steps`).
+    """
+    top = math.log10(max(max_updates, 1))
+    fine = np.logspace(0.0, top, dense * (n_points - 1) + 1)
+    coarse = fine[::dense]
+    return sorted({int(round(v)) for v in fine}), sorted({int(round(v)) for v in coarse})
+
+
+def run_probe_steps(grid: list[int] | tuple[int, ...], end: int) -> list[int]:
+    """The steps of `grid` up to a run's end step T, with T itself last: one run's probe list."""
+    return [s for s in grid if s < end] + [end]
+
+
 def displacement(w_t: np.ndarray, w_0: np.ndarray) -> np.ndarray:
     """||W_t - W_0||_F over all but the leading axis (one value per seed when stacked)."""
     d = np.asarray(w_t, dtype=np.float64) - np.asarray(w_0, dtype=np.float64)

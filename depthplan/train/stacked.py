@@ -14,6 +14,7 @@ import torch
 import torch.nn.functional as F
 
 from ..config import TrainConfig
+from ..information import binned_information
 from .probes import gradient_snr_db
 
 #: Largest (n_seeds x rows x width) activation block of one evaluation pass (4 Mi values, 16 MB in float32).
@@ -241,6 +242,30 @@ def _gradient_snr(stack: _Stack, x: torch.Tensor, onehot: torch.Tensor, rows: np
         grads = _draw_gradients(sub, x[drawn], onehot[drawn].transpose(1, 2), act, n_draws)
         parts.append([gradient_snr_db(g.numpy()) for g in grads])
     return [np.concatenate(layer) for layer in zip(*parts)]
+
+
+def _layer_outputs(stack: _Stack, x: torch.Tensor, act: str) -> list[torch.Tensor]:
+    """Every layer's output on the rows x (n_rows, n_in), for every seed: per hidden layer its
+    activations (n_seeds, n_rows, width), and for the output layer the softmax probabilities
+    (n_seeds, n_rows, n_classes). Input side first, as the other probes."""
+    hs, _, logits = stack.forward(x.expand(stack.n_seeds, -1, -1), act)
+    return hs[1:] + [torch.softmax(logits, dim=1).transpose(1, 2)]
+
+
+def _information(stack: _Stack, x: torch.Tensor, y: np.ndarray, act: str,
+                 n_bins: int) -> list[list[tuple[float, float]]]:
+    """Per seed, per layer (I(X;T), I(T;Y)) in bits on the fixed batch (x, y), by binning.
+
+    Seeds go in groups whose activations (all layers, whole batch) stay within EVAL_BLOCK values.
+    """
+    per_seed = x.shape[0] * sum(w.shape[2] for w in stack.ws)
+    group = max(1, EVAL_BLOCK // per_seed)
+    out: list[list[tuple[float, float]]] = []
+    for lo in range(0, stack.n_seeds, group):
+        sub = _Stack([w[lo:lo + group] for w in stack.ws], [b[lo:lo + group] for b in stack.bs])
+        outs = _layer_outputs(sub, x, act)
+        out += [[binned_information(o[i].numpy(), y, n_bins) for o in outs] for i in range(sub.n_seeds)]
+    return out
 
 
 def _minibatches(x: torch.Tensor, onehot: torch.Tensor, rows: np.ndarray) -> Iterator[tuple[torch.Tensor, torch.Tensor]]:

@@ -499,3 +499,61 @@ def test_report_renders_in_headless_chromium(folder_report, tmp_path):
     done = _chromium(tmp_path, "--hide-scrollbars", "--window-size=1100,5000",
                      f"--screenshot={shot}", paths["html"].as_uri())
     assert shot.is_file() and shot.read_bytes()[:8] == PNG_SIGNATURE, done.stderr[-2000:]
+
+
+def _probed_folder(folder: Path, with_information: bool = True) -> Path:
+    """Invented runs at K = 1, 2, 4, 8 (3 seeds) with T = 8000 / K (s = -1, so alpha = 1/2) and
+    probes on the trainer's grid up to each T: displacement sqrt(t) (a random walk's law, Feller
+    vol. 1, so the late exponent is exactly 1/2); with information, I(X;T) rising then falling and
+    I(T;Y) rising along the SNR steps."""
+    from depthplan.train.probes import probe_grids, run_probe_steps
+
+    rng = np.random.default_rng(5)
+    budget = 20000
+    dense, sparse = probe_grids(budget, 24)
+    runs = []
+    for k in (1, 2, 4, 8):
+        for s in range(3):
+            t = int(round(8000 / k * math.exp(rng.normal(0, 0.05)) / 20)) * 20
+            steps, snr_steps = run_probe_steps(dense, t), run_probe_steps(sparse, t)
+            x = np.log(np.asarray(snr_steps, float)) / math.log(t)            # 0 .. 1 along the run
+            layers = k + 1
+            info = {} if not with_information else {
+                "information_xt": tuple(tuple(float(8 - j * 0.5 + 2 * v - 3 * v * v) for v in x)
+                                        for j in range(layers)),
+                "information_ty": tuple(tuple(float(0.5 + 2.5 * v) for v in x) for _ in range(layers))}
+            runs.append(RunResult(
+                depth=k, width=8, seed=s, learning_rate=0.02, status="converged", iterations=t,
+                wall_seconds=t * 1e-4, seconds_per_update=1e-4 * (1 + k), final_train_loss=0.09,
+                final_train_accuracy=0.9, validation_accuracy=0.8, n_params=100 * layers,
+                eval_steps=tuple(range(20, t + 1, 20)),
+                train_loss=tuple(float(2.3 * math.exp(math.log(0.09 / 2.3) * e / t)) for e in range(20, t + 1, 20)),
+                probe_steps=tuple(steps),
+                displacement=tuple(tuple(float(math.sqrt(v)) for v in steps) for _ in range(layers)),
+                snr_steps=tuple(snr_steps),
+                snr_db=tuple(tuple(float(10.0 if v <= 50 else -10.0) for v in snr_steps) for _ in range(layers)),
+                **info))
+    folder.mkdir(parents=True)
+    write_runs_csv(runs, folder / "runs.csv")
+    (folder / "runs.jsonl").write_text("".join(json.dumps(r.to_dict()) + "\n" for r in runs))
+    (folder / "sweep.json").write_text(json.dumps({"name": "invented-probes", "eval_every": 20,
+                                                   "max_updates": budget, "seeds": [0, 1, 2]}))
+    return folder
+
+
+def test_information_plane_only_when_recorded_and_the_late_check_in_words(tmp_path, rates_report):
+    with_info = write_report(_probed_folder(tmp_path / "with", True), n_boot=N_BOOT)
+    assert "information.png" in {p.name for p in with_info["figures"]}
+    assert "information.png" not in {p.name for p in rates_report[1]["figures"]}   # runs without it
+    figure = next(p for p in with_info["figures"] if p.name == "information.png")
+    assert figure.read_bytes()[:8] == PNG_SIGNATURE
+    late = json.loads(with_info["fit"].read_text())["diffusion"]["late_window"]
+    # known answers: displacement sqrt(t) gives exactly 1/2 in every window; T ~ K^-1 gives alpha 1/2
+    assert late["exponent"] == pytest.approx(0.5, abs=1e-9) and late["verdict"] == "agree"
+    md = with_info["md"].read_text(encoding="utf-8")
+    assert "the weight displacement grows with exponent 0.50" in md and "The two agree" in md
+    assert "Information plane per layer" in md and "Saxe et al. 2018" in md
+    from depthplan.fitting import format_summary
+    line = next(x for x in format_summary(json.loads(with_info["fit"].read_text())).splitlines()
+                if x.startswith("Probes:"))
+    assert "(T/2 to T) 0.50" in line and ": agree (the intervals overlap)" in line

@@ -20,7 +20,7 @@ from depthplan.train.models import build_mlp
 from depthplan.records import CellSpec
 from depthplan.train.stacked import _draw_gradients, _Stack
 from depthplan.train.loop import BatchStream, _eval_subset, stacked_weights, train_cell
-from depthplan.train.reference import train_plain
+from depthplan.train.reference import probe_plain, train_plain
 
 NO_PROBES = ProbeConfig(displacement=False, snr=False)
 NEVER = ConvergeConfig(train_loss_below=1e-12)
@@ -158,8 +158,10 @@ def test_records_probes_and_progress(data) -> None:
         assert r.status == "censored" and r.iterations == 100 and r.eval_steps == (20, 40, 60, 80, 100)
         assert r.n_params == 12 * 8 + 8 + 2 * (8 * 8 + 8) + 8 * 3 + 3
         assert len(r.displacement) == len(r.snr_db) == 4                      # one series per layer
-        assert all(len(d) == len(r.probe_steps) for d in r.displacement + r.snr_db)
-        assert r.probe_steps[0] == 1 and r.probe_steps[-1] == 100
+        assert all(len(d) == len(r.probe_steps) for d in r.displacement)
+        assert all(len(d) == len(r.snr_steps) for d in r.snr_db)
+        assert set(r.snr_steps) <= set(r.probe_steps) and len(r.snr_steps) < len(r.probe_steps)
+        assert r.probe_steps[0] == r.snr_steps[0] == 1 and r.probe_steps[-1] == r.snr_steps[-1] == 100
         assert all(np.diff(d).min() > -1e-6 for d in r.displacement[:1])    # the first layer moves away
         # a value is measured or NaN (below the floor of a 4-draw window), never infinite
         assert not any(math.isinf(v) for d in r.snr_db for v in d)
@@ -232,3 +234,68 @@ def test_memory_at_256_seeds_depth_8_and_2000_rows_stays_under_1_gb() -> None:
     peak = json.loads(out.stdout.strip().splitlines()[-1])
     grown_mb = (peak["after_kb"] - peak["before_kb"]) / 1024
     assert peak["after_kb"] / 1024 < 1024, f"peak {peak['after_kb'] / 1024:.0f} MB (training added {grown_mb:.0f} MB)"
+
+
+def _probe_plain_one_thread(*args) -> list[dict]:
+    """`probe_plain` in float64 on one torch thread, as train_cell runs (a second thread on a busy
+    core makes autograd's small steps many times slower)."""
+    threads = torch.get_num_threads()
+    torch.set_num_threads(1)
+    try:
+        return probe_plain(*args, dtype=torch.float64)
+    finally:
+        torch.set_num_threads(threads)
+
+
+def test_probes_end_at_each_seeds_own_t_on_digits_and_match_the_plain_loop() -> None:
+    # A tiny real run: scikit-learn's digits (UCI, 1,797 8x8 images; DESIGN.md section 3), seeds
+    # trained together that converge at different T. Each seed's probes must end at its own T
+    # (the schedule before ended up to a third of T early), and the plain per-seed loop
+    # (nn.Sequential + torch.optim, reference) must record the same probe steps and displacements.
+    data = load_dataset(DataConfig(source="digits"))
+    model, spec = ModelConfig(width=16), CellSpec(depth=1, seeds=(0, 1, 2), learning_rate=0.1)
+    train = TrainConfig(learning_rate=(0.1,), max_updates=2000, eval_every=10,
+                        converge_when=ConvergeConfig(train_loss_below=0.5))
+    probes = ProbeConfig(n_points=12, snr_window=4)
+    results = train_cell(spec, model, train, probes, data, dtype=torch.float64)
+    assert all(r.status == "converged" for r in results) and len({r.iterations for r in results}) > 1
+    for r in results:
+        assert r.probe_steps[-1] == r.snr_steps[-1] == r.iterations < train.max_updates
+        assert r.probe_steps[0] == 1 and list(r.probe_steps) == sorted(set(r.probe_steps))
+        assert sum(s >= r.iterations / 2 for s in r.probe_steps) >= 3       # a late window to fit
+    plain = _probe_plain_one_thread(spec, model, train, probes, data)
+    for r, p in zip(results, plain):
+        assert (p["status"], p["iterations"], tuple(p["probe_steps"])) == (r.status, r.iterations, r.probe_steps)
+        np.testing.assert_allclose(r.displacement, p["displacement"], rtol=1e-9)
+
+
+def test_information_probe_at_t_equals_the_estimator_on_the_plain_network(data) -> None:
+    # reference: the plain per-seed network (nn.Sequential + torch.optim) at the same T, its layer
+    # outputs taken module by module, put through the same binning estimator (checked against
+    # closed forms and scikit-learn in tests/test_information.py)
+    from depthplan.information import binned_information
+    from depthplan.train.loop import INFORMATION_ROWS
+
+    model, spec = ModelConfig(width=8), CellSpec(depth=2, seeds=(0, 1), learning_rate=0.05)
+    train = _train(60)
+    probes = ProbeConfig(n_points=5, snr_window=4, information=True, information_bins=10)
+    results = train_cell(spec, model, train, probes, data, dtype=torch.float64)
+    plain = _probe_plain_one_thread(spec, model, train, probes, data)
+    x = torch.from_numpy(data.x_train).double()
+    rows = _eval_subset(len(x), INFORMATION_ROWS)
+    x_info, y_info = (x, data.y_train) if rows is None else (x[rows], data.y_train[rows.numpy()])
+    for r, p in zip(results, plain):
+        assert r.snr_steps[-1] == r.iterations == p["iterations"] == 60
+        assert len(r.information_xt) == len(r.information_ty) == 3
+        assert all(len(v) == len(r.snr_steps) for v in r.information_xt + r.information_ty)
+        outs, h = [], x_info
+        with torch.no_grad():
+            for m in p["net"]:
+                h = m(h)
+                if not isinstance(m, torch.nn.Linear):
+                    outs.append(h)                          # each hidden layer's activations
+            outs.append(torch.softmax(h, dim=1))            # the output layer's softmax
+        for j, o in enumerate(outs):
+            i_xt, i_ty = binned_information(o.numpy(), y_info, 10)
+            assert r.information_xt[j][-1] == pytest.approx(i_xt, abs=1e-9)
+            assert r.information_ty[j][-1] == pytest.approx(i_ty, abs=1e-9)
