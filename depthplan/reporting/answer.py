@@ -17,7 +17,7 @@ import numpy as np
 from ..fitting.cost import cost_basis_of, cost_label, network_words
 from ..fitting.planning import total_cost_curve
 from ..fitting.rates import TUNE_KEY, rate_effect_of, rate_effect_words
-from ..fitting.summary import caveat_sentences
+from ..fitting.summary import MODEL_LABELS, caveat_sentences
 from . import figures as F
 from .inputs import ReportInputs
 from .markup import EXTRAPOLATED, Block, Words
@@ -180,7 +180,15 @@ def _how_sure(fit: dict[str, Any], w: Words) -> str:
     how = ("of the seeds within each depth" if fit["bootstrap"]["method"] == "seeds_within_depth"
            else "of the fit's residuals, since some depth has a single run")
     text += (f" Intervals are 95 % percentile intervals from {w.num('bootstrap.n_boot', 'd')} "
-             f"bootstrap resamples {how}.")
+             f"bootstrap resamples {how}")
+    models = fit.get("models")
+    if models:
+        ranked = sorted(models["candidates"], key=lambda c: -c["weight"])
+        text += ("; every resample refits the candidate models and picks one again by AICc, so the "
+                 "depth intervals carry the doubt about which model is right as well as the seed noise. "
+                 "Akaike weights: " + ", ".join(f"{MODEL_LABELS.get(c['model'], c['model'])} {c['weight']:.2f}"
+                                                 for c in ranked))
+    text += "."
     if pl.get("without_shallowest"):
         text += (f" Leaving out the shallowest depth gives s = "
                  f"{w.num('power_law.without_shallowest.slope')}"

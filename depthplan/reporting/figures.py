@@ -218,6 +218,9 @@ def _law_label(fit: dict[str, Any], prefix: str = "") -> str:
         text += f"\nα = 1/(1 − s) = {pl['alpha']:.2f}{ci_words(pl['alpha_ci'], '.2f')}"
     if fit["curve"]["model"] == "segmented" and rev.get("rising_slope") is not None:
         text += f"; slope past K*: {rev['rising_slope']:.2f}"
+    if fit["curve"]["model"] not in ("power_law", "segmented"):
+        from ..fitting.summary import MODEL_LABELS
+        text += f"\ncurve: {MODEL_LABELS.get(fit['curve']['model'], fit['curve']['model'])} (chosen by AICc)"
     return text
 
 

@@ -23,6 +23,7 @@ from . import figures as F
 from ..fitting.cost import cost_basis_of, cost_per_update
 from ..fitting.rates import rate_effect_of, rate_effect_words
 from .answer import badge, save_percent
+from ..fitting.summary import MODEL_LABELS
 from .inputs import ReportInputs
 from .markup import Block, Words
 
@@ -53,7 +54,9 @@ def fit_table_blocks(inp: ReportInputs, w: Words) -> list[Block]:
     rows.append(["reversal", rev["status"].replace("_", " "), "", rev.get("note") or ""])
     if rev["status"] == "observed":
         rows.append(["reversal depth K*", w.num("reversal.depth", ".1f"),
-                     w.interval("reversal.depth_ci", ".1f"), "breakpoint of the broken-stick fit"])
+                     w.interval("reversal.depth_ci", ".1f"),
+                     f"minimum of the {MODEL_LABELS.get(rev.get('model') or 'segmented', 'broken stick')}"
+                     + ("; interval reselects the model on every bootstrap replicate" if fit.get("models") else "")])
     if rev.get("rising_slope") is not None:
         rows.append(["slope past the breakpoint", w.num("reversal.rising_slope"),
                      w.interval("reversal.rising_slope_ci"), ""])
@@ -76,9 +79,10 @@ def fit_table_blocks(inp: ReportInputs, w: Words) -> list[Block]:
     rows.append(["depth to plan for", w.num("planning.recommended_depth", "d")
                  + badge(plan.get("recommended_extrapolated")), "", plan.get("recommended_basis") or ""])
     return [("h", 3, "The fit", "fit-table"),
-            ("p", f"Fitted on the {F.group_label(fit['group'])}, by the "
-                  f"{'broken-stick' if plan.get('model') == 'segmented' else 'single power-law'} model "
-                  "for the planning figures. Intervals are 95 %.", "small"),
+            ("p", f"Fitted on the {F.group_label(fit['group'])}; the planning figures use the "
+                  f"{MODEL_LABELS.get(plan.get('model') or 'power_law', plan.get('model'))}"
+                  + (" (chosen by AICc among the candidate models)" if fit.get("models") else "")
+                  + ". Intervals are 95 %.", "small"),
             ("table", ["quantity", "estimate", "95 % interval", "note"], rows, "fit")]
 
 
