@@ -121,3 +121,28 @@ def test_run_and_demo_end_with_the_lines_fit_starts_with(tmp_path: Path, capsys:
     assert out.splitlines()[1:] == head
     assert [line for line in head if line.startswith("Recommended depth:")]   # after "Not settled: ..." if any
     assert format_summary(fit).splitlines()[1:1 + len(head)] == head     # the same lines as `fit`
+
+
+def test_demo_trains_over_a_committed_sample_that_has_no_store(write_yaml, tmp_path, monkeypatch, capsys):
+    # A fresh checkout has results/demo/ (runs.csv, fit.json, the report) but not store.db, which is
+    # not committed; `depthplan demo` must train it again instead of refusing the folder, while
+    # `depthplan run` into the same kind of folder still refuses (tests/sweep/test_guards.py).
+    import depthplan.cli as cli
+
+    tiny_config = write_yaml("""
+        name: tiny
+        data: {source: digits}
+        model: {width: 8}
+        sweep: {depths: [1, 2, 3], seeds: 2}
+        train: {learning_rate: 0.1, max_updates: 600, eval_every: 20, converge_when: {train_loss_below: 1.0}}
+        probes: {n_points: 4, snr_window: 2}
+        """)
+    out = tmp_path / "demo"
+    assert cli.main(["run", str(tiny_config), "--out", str(out), "-q", "--workers", "1"]) == 0
+    (out / "store.db").unlink()
+    monkeypatch.setattr(cli, "DEMO_CONFIG", tiny_config)
+    capsys.readouterr()
+    assert cli.main(["demo", "--out", str(out), "-q", "--workers", "1"]) == 0
+    printed = capsys.readouterr().out
+    assert "holds the committed demo results without their store; training the demo again" in printed
+    assert "cells trained now" in printed and (out / "store.db").is_file() and (out / "report.html").is_file()

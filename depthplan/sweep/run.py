@@ -138,14 +138,18 @@ def _differences(old: dict, new: dict, prefix: str = "") -> list[str]:
     return out
 
 
-def open_sweep(cfg: SweepFile, folder: Path, url: str) -> SweepStore:
+def open_sweep(cfg: SweepFile, folder: Path, url: str, *, over_sample: bool = False) -> SweepStore:
     """Open (or create) the sweep's store and check it holds this very sweep.
+
+    Args:
+        over_sample: exports without a store may be trained over (the demo's committed sample,
+            which ships without its store); otherwise that is refused.
 
     Raises:
         StoreError: the store holds a sweep of another config.
     """
     own_store = url == local_url(folder)
-    if own_store:
+    if own_store and not over_sample:
         guards.check_store_beside_exports(folder, folder / "store.db")
     guards.check_one_sweep(folder, cfg.name, study_names(url) if own_store else None)
     hashes = guards.data_hashes(cfg)
@@ -466,7 +470,8 @@ def _summary_notes(cfg: SweepFile, results: list[RunResult], tuned: dict[int, fl
 
 
 def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int | None = 1,
-              storage: str | None = None, show_progress: bool = True, plan_only: bool = False) -> SweepSummary:
+              storage: str | None = None, show_progress: bool = True, plan_only: bool = False,
+              over_sample: bool = False) -> SweepSummary:
     """Train every cell of the sweep that is not stored yet, and export the runs.
 
     With a tuning block, each depth's learning rate is searched first; with
@@ -496,7 +501,7 @@ def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int | N
     make_folder(folder)
     t0 = time.perf_counter()
     with FolderLock(folder / ".lock"), store_failures(url):
-        store = open_sweep(cfg, folder, url)
+        store = open_sweep(cfg, folder, url, over_sample=over_sample)
         write_sidecars(cfg, folder, store)
         state = store.meta().get("schedule") or _initial_state(cfg)
         store.set_meta("schedule", state)
