@@ -110,6 +110,9 @@ def train_cell(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: P
     if threads is not None:
         torch.set_num_threads(threads)
     try:
+        if model.family_name != "mlp":   # residual, conv, the user's module: the torch.func trainer
+            from .functional import train_cell_functional
+            return train_cell_functional(spec, model, train, probes, data, progress, dtype, eval_rows)
         with torch.inference_mode():
             return _train_cell(spec, model, train, probes, data, progress, dtype, eval_rows)
     finally:
