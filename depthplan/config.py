@@ -308,7 +308,7 @@ def _model_combinations(c: Checker, d: dict[str, Any], m: ModelConfig) -> None:
     if m.factory and d.get("family") not in (None, "mlp"):
         c.add("model.family", f"must be left out when model.factory is set (the factory builds the model), got {show(d['family'])}")
     for key, owner in (("norm", "residual"), ("branch_scale", "residual"), ("channels", "conv")):
-        if d.get(key) is not None and name != owner:
+        if getattr(m, key) is not None and name != owner:     # the neutral norm: none, branch_scale: 1 pass
             c.add(f"model.{key}", f"applies to model.family {owner} only; this model is {name}")
     for key in ("options", "factory_path"):
         if d.get(key) is not None and not m.factory:
