@@ -79,7 +79,7 @@ def plan_cells(cfg: SweepFile, state: dict[str, Any] | None = None) -> list[Cell
 def check_sweep_model(cfg: SweepFile) -> None:
     """Build the sweep's network at its shallowest and deepest depth (`families.check_model`), or raise."""
     from ..train.datasets import load_dataset
-    from ..train.families import check_model
+    from ..train.functional import check_model
 
     deepest = cfg.sweep.adaptive.high if cfg.sweep.adaptive else max(cfg.sweep.depths)
     check_model(cfg.model, load_dataset(cfg.data), (min(cfg.sweep.depths), deepest))

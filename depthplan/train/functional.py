@@ -30,11 +30,12 @@ from torch import nn
 from torch.func import functional_call, stack_module_state, vmap
 
 from ..config import ModelConfig, ProbeConfig, TrainConfig
+from ..errors import ConfigError, first_line
 from ..records import CellSpec, RunResult
+from .batches import BatchStream, _cell_tensors
 from .convergence import Criterion, verdict
 from .datasets import Dataset
 from .families import branch_multiplier, build_network, network_input_shape
-from .loop import BatchStream, _cell_tensors
 from .probes import displacement, gradient_snr_db, log_spaced_steps
 
 #: Largest (n_seeds x rows x activations per row) block of one evaluation pass, in values.
@@ -117,6 +118,45 @@ def _residual_members(nets: list[nn.Module], model: ModelConfig, depth: int) -> 
         return lin(p, h, "readout")
 
     return Members([params[n] for n in names], names, [], direct=forward)
+
+
+def check_model(cfg: ModelConfig, data: Dataset, depths: tuple[int, ...]) -> None:
+    """Build the network at the shallowest and deepest depth and run two seeds of it batched, or raise.
+
+    What `depthplan check` and `depthplan run` do before any training, so that a factory that
+    fails to import, returns something else, gives the wrong output shape or cannot be batched
+    over seeds is one line naming `model.factory`.
+
+    Raises:
+        ConfigError, DataError: naming the key and what was found.
+    """
+    data_shape, n_classes = data.input_shape, data.n_classes
+    for depth in sorted({min(depths), max(depths)}):
+        nets = [build_network(cfg, data_shape, depth, n_classes, seed, torch.float32) for seed in (0, 1)]
+        shape = network_input_shape(cfg, data_shape)
+        x = torch.zeros(2, *shape)
+        try:
+            out = nets[0](x)
+        except Exception as exc:
+            raise ConfigError(f"model.{_key(cfg)}: the depth-{depth} network fails on a batch of shape "
+                              f"{tuple(x.shape)}: {type(exc).__name__}: {first_line(str(exc))}") from None
+        if not isinstance(out, torch.Tensor) or tuple(out.shape) != (2, n_classes):
+            got = tuple(out.shape) if isinstance(out, torch.Tensor) else f"a {type(out).__name__}"
+            raise ConfigError(f"model.{_key(cfg)}: the depth-{depth} network maps a batch of shape {tuple(x.shape)} "
+                              f"to {got}, expected (2, {n_classes}) (one logit per class)")
+        members = stack_networks(nets)
+        try:
+            logits = members.forward(members.params, x.expand(2, *x.shape))
+            torch.autograd.grad(logits.sum(), members.params)
+        except Exception as exc:
+            raise ConfigError(f"model.{_key(cfg)}: the depth-{depth} network cannot be batched over seeds with "
+                              f"torch.func.vmap ({type(exc).__name__}: {first_line(str(exc))}); a module that draws "
+                              "random numbers (dropout) or reads tensors back as Python numbers (.item()) "
+                              "cannot") from None
+
+
+def _key(cfg: ModelConfig) -> str:
+    return "factory" if cfg.factory else "family"
 
 
 def build_members(model: ModelConfig, data: Dataset, depth: int, seeds: tuple[int, ...],

@@ -14,7 +14,8 @@ from depthplan.config import ConvergeConfig, DataConfig, ModelConfig, ProbeConfi
 from depthplan.errors import ConfigError
 from depthplan.records import CellSpec
 from depthplan.train.datasets import load_dataset
-from depthplan.train.families import ConvNet, ResidualNet, build_network, check_model
+from depthplan.train.families import ConvNet, ResidualNet, build_network
+from depthplan.train.functional import check_model
 from depthplan.train.loop import train_cell
 from depthplan.train.reference import train_plain
 
