@@ -196,3 +196,20 @@ def test_a_bad_factory_is_one_line_naming_model_factory(tab, factory_dir, fn, pa
     with pytest.raises(ConfigError, match=pattern) as err:
         check_model(model, tab, (1, 4))
     assert "\n" not in str(err.value)
+
+
+def test_a_seed_that_converges_leaves_and_the_others_train_as_if_alone(tab) -> None:
+    model, seeds = ModelConfig(width=8, family="residual", norm="layer"), (0, 1, 2)
+    free = _curves(train_cell(CellSpec(2, seeds, 0.05), model, replace(_train(100, "sgd"), eval_every=20),
+                              NO_PROBES, tab, dtype=torch.float64))
+    fast = int(np.argmin(free[:, 1]))
+    others_best = min(free[s, :2].min() for s in range(3) if s != fast)
+    assert free[fast, 1] < others_best
+    train = replace(_train(100, "sgd"), eval_every=20,
+                    converge_when=ConvergeConfig(train_loss_below=float(free[fast, 1] + others_best) / 2))
+    together = train_cell(CellSpec(2, seeds, 0.05), model, train, NO_PROBES, tab, dtype=torch.float64)
+    assert together[fast].status == "converged" and together[fast].iterations == 40
+    for k, seed in enumerate(seeds):      # reference: the same seed trained alone
+        alone = train_cell(CellSpec(2, (seed,), 0.05), model, train, NO_PROBES, tab, dtype=torch.float64)[0]
+        assert (alone.status, alone.iterations) == (together[k].status, together[k].iterations)
+        np.testing.assert_allclose(alone.train_loss, together[k].train_loss, rtol=1e-12)
