@@ -34,11 +34,15 @@ def _cmd_check(args: argparse.Namespace) -> int:
 
     cfg = load_config(args.config)
     data = load_dataset(cfg.data)
+    if cfg.model.family_name != "mlp":    # builds the network (imports torch): a bad factory fails here
+        from .sweep.run import check_sweep_model
+        check_sweep_model(cfg)
     cells = plan_cells(cfg)
     check_memory(cfg, cells)
     size = plan_size(cfg, cells, available_cores())
     print(f"{args.config}: ok")
     print(f"  data     {data.description} ({len(data.y_train)} training, {len(data.y_val)} validation rows)")
+    print(f"  model    {cfg.model.family_name}" + (f" ({cfg.model.options_text()})" if cfg.model.options_text() else ""))
     print(f"  depths   {', '.join(map(str, cfg.sweep.depths))}; seeds {len(cfg.sweep.seeds)}; "
           f"learning rates {', '.join(f'{lr:g}' for lr in cfg.train.learning_rate)}")
     print(f"  cells    {len(cells)} ({sum(len(c.seeds) for c in cells)} seed runs, "

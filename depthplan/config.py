@@ -28,7 +28,12 @@ from .checks import (
 from .errors import ConfigError
 from .urls import has_credentials
 
-SOURCES = ("synthetic", "digits", "iris", "wine", "breast_cancer", "csv", "npz", "npy")
+SOURCES = ("synthetic", "digits", "digits_images", "iris", "wine", "breast_cancer", "csv", "npz", "npy")
+#: Sources whose rows may be images (C, H, W): what the conv family needs.
+IMAGE_SOURCES = ("digits_images", "npz", "npy")
+FAMILIES = ("mlp", "residual", "conv")
+NORMS = ("none", "layer")
+BRANCH_SCALES = ("1", "depth")
 ACTIVATIONS = ("tanh", "relu", "gelu", "sigmoid")
 INITS = ("default", "xavier", "glorot", "he", "kaiming", "orthogonal")
 OPTIMIZERS = ("sgd", "adam")
@@ -58,12 +63,45 @@ class ModelConfig:
     activation: str = "tanh"
     init: str = "he"
     init_gain: float | None = None   # None: the activation's gain for he, 1 for the others
+    # Families beside the plain MLP. Every new setting defaults to None, so the fingerprint of an
+    # mlp sweep stored before they existed stays the same (None settings are left out of it).
+    family: str | None = None        # mlp (None), residual, conv
+    norm: str | None = None          # residual: none (None) or layer (LayerNorm before the activation)
+    branch_scale: str | None = None  # residual: "1" (None) or "depth" (every branch times 1/sqrt(K))
+    channels: int | None = None      # conv: channels of every block (None: model.width)
+    factory: str | None = None       # "package.module:function" building the user's nn.Module
+    factory_path: str | None = None  # folder the factory is imported from (the YAML file's folder)
+    options: dict[str, Any] | None = None   # keyword arguments passed to the factory
 
     def widths(self, depth: int) -> tuple[int, ...]:
         """Hidden widths of a network with `depth` hidden layers."""
         if isinstance(self.width, int):
             return (self.width,) * depth
         return tuple(self.width[:depth])
+
+    @property
+    def family_name(self) -> str:
+        """mlp, residual, conv, or factory (the user's own module)."""
+        return "factory" if self.factory else (self.family or "mlp")
+
+    def options_text(self) -> str:
+        """The family's own settings in one line (`runs.csv` and the report name them); "" for an mlp."""
+        name = self.family_name
+        if name == "residual":
+            return f"branch_scale={self.branch_scale or '1'}; norm={self.norm or 'none'}"
+        if name == "conv":
+            return f"channels={self.conv_channels}"
+        if name == "factory":
+            opts = json.dumps(self.options or {}, sort_keys=True, separators=(",", ":"))
+            return f"{self.factory} {opts}"
+        return ""
+
+    @property
+    def conv_channels(self) -> int:
+        """Channels of every conv block: model.channels, else model.width."""
+        if self.channels is not None:
+            return self.channels
+        return self.width if isinstance(self.width, int) else self.width[0]
 
 
 @dataclass(frozen=True)
@@ -223,7 +261,29 @@ def _data(c: Checker, raw: Any, base: Path) -> DataConfig:
     return DataConfig(**kw)
 
 
-def _model(c: Checker, raw: Any) -> ModelConfig:
+def _factory_name(v: Any) -> str:
+    """"package.module:function" (identifiers separated by dots, one colon)."""
+    text = as_text(v).strip()
+    mod, _, fn = text.partition(":")
+    if not (mod and fn and all(p.isidentifier() for p in mod.split(".")) and fn.isidentifier()):
+        raise ValueError(f'must be "package.module:function", got {show(v)}')
+    return text
+
+
+def _options(v: Any) -> dict[str, Any]:
+    """A mapping of keyword arguments with plain YAML values (numbers, text, flags, lists)."""
+    if not isinstance(v, dict):
+        raise ValueError(f"must be a mapping of keyword arguments for model.factory, got {show(v)}")
+    bad = [k for k in v if not isinstance(k, str) or not k.isidentifier()]
+    if bad:
+        raise ValueError(f"keys must be Python names, got {show(bad[0])}")
+    reserved = sorted({"depth", "n_inputs", "n_classes"} & set(v))
+    if reserved:
+        raise ValueError(f"must not set {', '.join(reserved)} (depthplan passes them), got {show(v)}")
+    return json.loads(json.dumps(v))
+
+
+def _model(c: Checker, raw: Any, base: Path) -> ModelConfig:
     d = c.keys("model", raw, tuple(ModelConfig.__dataclass_fields__))
     dflt = ModelConfig()
     width: Any = dflt.width
@@ -232,12 +292,49 @@ def _model(c: Checker, raw: Any) -> ModelConfig:
             width = int_list(c, "model.width", d["width"], unique=False) or dflt.width
         else:
             width = c.take(d, "model", "width", as_int(), dflt.width)
-    return ModelConfig(
+    family = c.take(d, "model", "family", as_choice(FAMILIES), None)
+    norm = c.take(d, "model", "norm", as_choice(NORMS), None)
+    scale = d.get("branch_scale")
+    scale = c.take(d, "model", "branch_scale", as_choice(BRANCH_SCALES), None) if scale != 1 else "1"
+    factory = c.take(d, "model", "factory", _factory_name, None)
+    path = c.take(d, "model", "factory_path", as_text, None)
+    m = ModelConfig(
         width=width,
         activation=c.take(d, "model", "activation", as_choice(ACTIVATIONS), dflt.activation),
         init=c.take(d, "model", "init", as_choice(INITS), dflt.init),
         init_gain=c.take(d, "model", "init_gain", as_float(), None),
+        family=None if family == "mlp" else family,
+        norm=None if norm == "none" else norm,
+        branch_scale=None if scale == "1" else scale,
+        channels=c.take(d, "model", "channels", as_int(), None),
+        factory=factory,
+        factory_path=(str(_resolved(path, base)) if path is not None else str(base.resolve())) if factory else None,
+        options=c.take(d, "model", "options", _options, None),
     )
+    _model_combinations(c, d, m)
+    return m
+
+
+def _resolved(path: str, base: Path) -> Path:
+    p = Path(path).expanduser()
+    return p if p.is_absolute() else (base / p).resolve()
+
+
+def _model_combinations(c: Checker, d: dict[str, Any], m: ModelConfig) -> None:
+    """Keys that belong to one family only, and a factory beside a built-in family."""
+    name = m.family_name
+    if m.factory and d.get("family") not in (None, "mlp"):
+        c.add("model.family", f"must be left out when model.factory is set (the factory builds the model), got {show(d['family'])}")
+    for key, owner in (("norm", "residual"), ("branch_scale", "residual"), ("channels", "conv")):
+        if getattr(m, key) is not None and name != owner:     # the neutral norm: none, branch_scale: 1 pass
+            c.add(f"model.{key}", f"applies to model.family {owner} only; this model is {name}")
+    for key in ("options", "factory_path"):
+        if d.get(key) is not None and not m.factory:
+            c.add(f"model.{key}", "applies only with model.factory")
+    if m.factory_path is not None and not Path(m.factory_path).is_dir():
+        c.add("model.factory_path", f"no such folder: {clip(m.factory_path)}")
+    if name == "residual" and not isinstance(m.width, int):
+        c.add("model.width", f"must be one integer for model.family residual (every block has the same width), got {show(d.get('width'))}")
 
 
 def geometric_depths(low: int, high: int, n: int = 5) -> tuple[int, ...]:
@@ -413,7 +510,7 @@ def parse_config(raw: Any, *, base_dir: Path, where: str = "sweep file") -> Swee
     cfg = SweepFile(
         name=name or "",
         data=_data(c, top.get("data"), base_dir),
-        model=_model(c, top.get("model")),
+        model=_model(c, top.get("model"), base_dir),
         sweep=_sweep(c, top.get("sweep")),
         train=_train(c, top.get("train")),
         probes=_probes(c, top.get("probes")),
@@ -423,7 +520,10 @@ def parse_config(raw: Any, *, base_dir: Path, where: str = "sweep file") -> Swee
     if cfg.output.dir is None and name:
         # the default folder lies beside the sweep file, whatever the working directory
         cfg = replace(cfg, output=replace(cfg.output, dir=str((base_dir / "results" / name).resolve())))
-    if isinstance(cfg.model.width, tuple) and len(cfg.model.width) < max(cfg.sweep.depths):
+    if cfg.model.family == "conv" and cfg.data.source not in IMAGE_SOURCES:
+        c.add("model.family", f"conv needs image rows (data.source {', '.join(IMAGE_SOURCES)}: digits as 1x8x8 "
+                              f"images, or arrays of shape (N, C, H, W)), got data.source {cfg.data.source}")
+    if cfg.model.family_name == "mlp" and isinstance(cfg.model.width, tuple) and len(cfg.model.width) < max(cfg.sweep.depths):
         c.add("model.width", f"lists {len(cfg.model.width)} widths but sweep.depths goes to {max(cfg.sweep.depths)}")
     if c.problems:
         n = len(c.problems)

@@ -100,6 +100,7 @@ RUN_COLUMNS = (
     "depth", "width", "train_rows", "seed", "learning_rate", "lr_mode", "status", "iterations",
     "wall_seconds", "seconds_per_update", "final_train_loss", "final_train_accuracy",
     "validation_accuracy", "n_params", "activation", "init", "optimizer", "cell_id",
+    "family", "model_options",
 )
 
 
@@ -129,6 +130,8 @@ class RunResult:
     optimizer: str = "sgd"
     lr_mode: RateMode = RateMode.FIXED   # fixed | tuned | tuning
     cell_id: str = ""
+    family: str = "mlp"             # mlp | residual | conv | factory
+    model_options: str = ""         # the family's own settings (ModelConfig.options_text)
     # curves: evaluation steps with the full-training-set loss at each
     eval_steps: tuple[int, ...] = ()
     train_loss: tuple[float, ...] = ()

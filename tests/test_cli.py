@@ -146,3 +146,49 @@ def test_demo_trains_over_a_committed_sample_that_has_no_store(write_yaml, tmp_p
     printed = capsys.readouterr().out
     assert "holds the committed demo results without their store; training the demo again" in printed
     assert "cells trained now" in printed and (out / "store.db").is_file() and (out / "report.html").is_file()
+
+
+# --------------------------------------------------------------------------- model families
+
+TINY_RESIDUAL = """
+name: tiny-res
+data: {source: iris}
+model: {family: residual, width: 4, branch_scale: depth, norm: layer}
+sweep: {depths: [1, 2, 3], seeds: 2}
+train:
+  learning_rate: {low: 0.01, high: 1.0, trials: 2, seeds: 1}
+  max_updates: 40
+  eval_every: 20
+  converge_when: {train_loss_below: 2.0}
+probes: {n_points: 4, snr_window: 3}
+"""
+
+
+def test_residual_sweep_with_tuning_through_run_and_report(write_yaml, tmp_path: Path,
+                                                            capsys: pytest.CaptureFixture) -> None:
+    import csv
+
+    out = tmp_path / "r"
+    assert main(["run", str(write_yaml(TINY_RESIDUAL)), "--out", str(out), "-q"]) == 0
+    assert "tuned learning rates: K=1" in capsys.readouterr().out
+    with (out / "runs.csv").open(newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert len(rows) == 6 and {r["lr_mode"] for r in rows} == {"tuned"}
+    assert {(r["family"], r["model_options"]) for r in rows} == {("residual", "branch_scale=depth; norm=layer")}
+    assert main(["report", str(out)]) == 0
+    report = (out / "report.md").read_text()
+    assert "| model family | residual (branch_scale=depth; norm=layer) |" in report
+    assert "a residual network of width 4" in report
+
+
+def test_a_factory_that_fails_is_one_line_before_any_training(write_yaml, tmp_path: Path,
+                                                               capsys: pytest.CaptureFixture) -> None:
+    (tmp_path / "broken_nets.py").write_text("def build(depth, n_inputs, n_classes):\n    return 'a network'\n")
+    cfg = write_yaml("name: t\ndata: {source: iris}\nmodel: {factory: 'broken_nets:build'}\nsweep: {depths: [1, 3]}\n")
+    for argv in (["check", str(cfg)], ["run", str(cfg), "--out", str(tmp_path / "r"), "-q"]):
+        assert main(argv) == 2
+        err = capsys.readouterr().err
+        assert err.count("\n") == 1 and "Traceback" not in err
+        assert "model.factory: broken_nets:build(depth=1, n_inputs=4, n_classes=3) returned a str, " \
+               "expected a torch.nn.Module" in err
+    assert not (tmp_path / "r").exists()                  # nothing created, nothing trained

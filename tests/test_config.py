@@ -147,3 +147,46 @@ def test_information_probe_is_off_by_default_and_leaves_old_fingerprints(write_y
     assert not plain.probes.information and plain.probes.bins == 30
     assert off.fingerprint() == plain.fingerprint()
     assert on.probes.information and on.probes.bins == 12 and on.fingerprint() != plain.fingerprint()
+
+
+# --------------------------------------------------------------------------- model families
+
+@pytest.mark.parametrize("patch, pattern", [
+    ("model: {family: transformer}", r"model\.family: must be one of mlp, residual, conv, got 'transformer'"),
+    ("model: {family: residual, norm: batch}", r"model\.norm: must be one of none, layer, got 'batch'"),
+    ("model: {family: residual, branch_scale: 2}", r"model\.branch_scale: must be one of 1, depth, got 2"),
+    ("model: {norm: layer}", r"model\.norm: applies to model\.family residual only; this model is mlp"),
+    ("model: {family: conv, branch_scale: depth}", r"model\.branch_scale: applies to model\.family residual only"),
+    ("model: {channels: 8}", r"model\.channels: applies to model\.family conv only; this model is mlp"),
+    ("model: {family: conv, channels: 0}", r"model\.channels: must be a positive integer, got 0"),
+    ("model: {family: conv}", r"model\.family: conv needs image rows .* got data\.source synthetic"),
+    ("model: {family: residual, width: [8, 8]}", r"model\.width: must be one integer for model\.family residual"),
+    ("model: {factory: 'nets.py'}", r'model\.factory: must be "package\.module:function", got \'nets\.py\''),
+    ("model: {factory: 'a.b:c', family: conv}", r"model\.family: must be left out when model\.factory is set"),
+    ("model: {options: {width: 3}}", r"model\.options: applies only with model\.factory"),
+    ("model: {factory: 'a:b', options: [1]}", r"model\.options: must be a mapping of keyword arguments"),
+    ("model: {factory: 'a:b', options: {depth: 3}}", r"model\.options: must not set depth"),
+    ("model: {factory: 'a:b', factory_path: nowhere}", r"model\.factory_path: no such folder"),
+    ("model: {familly: residual}", r"unknown key 'familly' in model \(did you mean 'family'\?\)"),
+])
+def test_bad_model_family_keys_name_their_key_path(write_yaml, patch: str, pattern: str) -> None:
+    with pytest.raises(ConfigError, match=pattern):
+        load_config(write_yaml("name: t\n" + patch + "\n"))
+
+
+def test_family_keys_resolve_and_leave_an_mlp_fingerprint_alone(write_yaml, tmp_path: Path) -> None:
+    import yaml
+
+    plain = load_config(write_yaml("name: a\nmodel: {width: 16}\n", "a.yaml"))
+    named = load_config(write_yaml("name: a\nmodel: {width: 16, family: mlp, norm: none}\n", "b.yaml"))
+    assert named.fingerprint() == plain.fingerprint() and plain.to_dict()["model"]["family"] is None
+    res = load_config(write_yaml("name: a\nmodel: {width: 16, family: residual, branch_scale: depth, norm: layer}\n"))
+    assert (res.model.family_name, res.model.options_text()) == ("residual", "branch_scale=depth; norm=layer")
+    assert res.fingerprint() != plain.fingerprint()
+    one = load_config(write_yaml("name: a\nmodel: {family: residual, branch_scale: 1}\n", "c.yaml"))
+    assert one.model.branch_scale is None and one.model.options_text() == "branch_scale=1; norm=none"
+    fac = load_config(write_yaml("name: a\nmodel: {factory: 'my.nets:build', options: {width: 8}}\n", "d.yaml"))
+    assert fac.model.factory_path == str(tmp_path.resolve())           # the YAML file's folder
+    assert fac.model.options_text() == 'my.nets:build {"width":8}'
+    again = config_from_dict(yaml.safe_load(dump_config(fac)))      # as a worker process reads it back
+    assert again.model == fac.model and again.fingerprint() == fac.fingerprint()

@@ -131,6 +131,8 @@ COLUMN_SPECS: dict[str, _Spec] = {
     "init": (str, "", ""),
     "optimizer": (str, "", "sgd"),
     "cell_id": (str, "", ""),
+    "family": (str, "", "mlp"),
+    "model_options": (str, "", ""),
 }
 assert set(RUN_COLUMNS) <= set(COLUMN_SPECS)
 

@@ -225,6 +225,24 @@ def _criterion_words(cfg: Any) -> str:
     return " and ".join(parts) or "the stopping rule holds"
 
 
+def model_words(model: Any) -> str:
+    """The swept network in words, by family (depth K counts the hidden layers or blocks)."""
+    width = model.width if isinstance(model.width, int) else "/".join(map(str, model.width))
+    kind = f"{model.activation}, {_INIT_WORDS.get(model.init, model.init)} initialisation"
+    family = getattr(model, "family_name", "mlp")
+    if family == "residual":
+        branch = "each branch scaled by 1/sqrt(K)" if model.branch_scale == "depth" else "branch multiplier 1"
+        norm = "LayerNorm before the activation" if model.norm == "layer" else "no normalisation"
+        return (f"a residual network of width {width}: an input projection, K one-layer pre-activation blocks "
+                f"({branch}, {norm}) and a linear readout ({kind})")
+    if family == "conv":
+        return (f"a convolutional network of K 3x3 blocks with {model.conv_channels} channels, global average "
+                f"pooling and a linear readout ({kind})")
+    if family == "factory":
+        return f"the user's own module from `{model.factory}` (options {model.options or {}})"
+    return f"an MLP of width {width} ({kind})"
+
+
 def _rate_words(cfg: Any) -> str:
     t = cfg.train
     fixed = ", ".join(f"{lr:g}" for lr in t.learning_rate)
@@ -256,10 +274,9 @@ def _what_was_swept(inp: ReportInputs) -> str:
         return (f"**What was swept.** {runs_words} at depths {depths}, {per} seeds per depth (the "
                 f"folder's config.yaml {why}, so the settings are not described).")
     opt = "SGD" if cfg.train.optimizer == "sgd" else cfg.train.optimizer.capitalize()
-    width = cfg.model.width if isinstance(cfg.model.width, int) else "/".join(map(str, cfg.model.width))
     return (f"**What was swept.** {runs_words} on {_dataset_words(cfg)}: depths {depths} "
-            f"({len(fit['depths_swept'])} depths), {per} seeds per depth. Each network is an MLP of "
-            f"width {width} ({cfg.model.activation}, {_INIT_WORDS.get(cfg.model.init, cfg.model.init)} initialisation) trained with "
+            f"({len(fit['depths_swept'])} depths), {per} seeds per depth. Each network is "
+            f"{model_words(cfg.model)} trained with "
             f"{opt}, {_rate_words(cfg)}, batch {cfg.train.batch_size}, at most "
             f"{cfg.train.max_updates:,} updates; a run counts as converged at the first check (every "
             f"{cfg.train.eval_every} updates) at which {_criterion_words(cfg)}.")

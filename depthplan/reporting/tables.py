@@ -357,6 +357,11 @@ def provenance_blocks(inp: ReportInputs) -> list[Block]:
                                     "run measures)"])
     if info.get("config_file"):
         rows.append(["config file", f"`{info['config_file']}`"])
+    families = sorted({(r.family, r.model_options) for r in inp.runs if getattr(r, "family", "")})
+    if inp.config is not None:
+        families = [(inp.config.model.family_name, inp.config.model.options_text())]
+    for family, options in families:
+        rows.append(["model family", family + (f" ({options})" if options else "")])
     seeds = info.get("seeds") or sorted({r.seed for r in inp.runs})
     rows.append(["seeds", ", ".join(map(str, seeds))])
     rows.append(["fit", f"{inp.fit_note}; bootstrap seed {fit['bootstrap']['seed']}, schema "

@@ -86,6 +86,15 @@ def plan_cells(cfg: SweepFile, state: dict[str, Any] | None = None) -> list[Cell
     return cells
 
 
+def check_sweep_model(cfg: SweepFile) -> None:
+    """Build the sweep's network at its shallowest and deepest depth (`families.check_model`), or raise."""
+    from ..train.datasets import load_dataset
+    from ..train.functional import check_model
+
+    deepest = cfg.sweep.adaptive.high if cfg.sweep.adaptive else max(cfg.sweep.depths)
+    check_model(cfg.model, load_dataset(cfg.data), (min(cfg.sweep.depths), deepest))
+
+
 def output_folder(cfg: SweepFile, out: str | Path | None) -> Path:
     """Where results go: --out, then output.dir (by default results/<name> beside the sweep file)."""
     return Path(out or cfg.output.dir or Path("results") / cfg.name).expanduser().resolve()
@@ -495,6 +504,8 @@ def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int | N
     if workers < 1:
         raise ConfigError(f"--workers: must be a positive integer, got {workers}")
     guards.check_memory(cfg, plan_cells(cfg))
+    if cfg.model.family_name != "mlp":   # a factory that cannot build its module fails here, before any training
+        check_sweep_model(cfg)
     folder = output_folder(cfg, out)
     url = resolve_url(storage, cfg.output.storage, folder)
     check_url(url)

@@ -1,7 +1,10 @@
 """Build seeded, deterministic train/validation arrays from a `DataConfig`.
 
 Arrays are numpy (float32 features, int64 labels); the trainer turns them
-into tensors. Standardisation is fitted on the training split only.
+into tensors. Standardisation is fitted on the training split only: per feature
+for tables, per channel for images (rows of shape (C, H, W), stored flattened so
+that minibatching is the same for every family; `Dataset.image_shape` says how to
+fold a row back into an image).
 """
 from __future__ import annotations
 
@@ -27,10 +30,16 @@ class Dataset:
     n_classes: int
     class_names: tuple[str, ...]
     description: str
+    image_shape: tuple[int, int, int] | None = None   # (C, H, W) when every row is a flattened image
 
     @property
     def n_features(self) -> int:
         return int(self.x_train.shape[1])
+
+    @property
+    def input_shape(self) -> tuple[int, ...]:
+        """The shape of one input row as a model sees it: (n_features,) or (C, H, W)."""
+        return self.image_shape or (self.n_features,)
 
 
 def synthetic_scenario(n_samples: int = 2000, n_features: int = 64, n_latent: int = 4,
@@ -156,12 +165,17 @@ def load_dataset(cfg: DataConfig) -> Dataset:
     Raises:
         DataError: a file is missing, malformed, or the split is impossible.
     """
+    image_shape: tuple[int, int, int] | None = None
     if cfg.source == "synthetic":
         x, y = synthetic_scenario(cfg.n_samples, cfg.n_features, cfg.n_latent,
                                   cfg.n_classes, cfg.noise, cfg.scenario_seed)
         names = tuple(f"class{k}" for k in range(cfg.n_classes))
         desc = (f"synthetic scenario: {cfg.n_samples} samples, {cfg.n_features} features from "
                 f"{cfg.n_latent} latent factors, {cfg.n_classes} classes, noise {cfg.noise:g}")
+    elif cfg.source == "digits_images":
+        x, y, names = _sklearn_dataset("digits")
+        image_shape = (1, 8, 8)
+        desc = f"scikit-learn digits as 1x8x8 images: {len(y)} samples, {len(names)} classes"
     elif cfg.source in ("digits", "iris", "wine", "breast_cancer"):
         x, y, names = _sklearn_dataset(cfg.source)
         desc = f"scikit-learn {cfg.source}: {len(y)} samples, {x.shape[1]} features, {len(names)} classes"
@@ -171,25 +185,36 @@ def load_dataset(cfg: DataConfig) -> Dataset:
     else:
         path = Path(cfg.path)
         x, raw_y = _load_arrays(path, cfg)
-        if x.ndim != 2 or x.dtype.kind not in "iuf":
-            raise DataError(f"{path}: features must be a 2-D numeric array, got shape {x.shape} of {x.dtype}")
+        if x.ndim not in (2, 4) or x.dtype.kind not in "iuf" or 0 in x.shape[1:]:
+            raise DataError(f"{path}: features must be a numeric array of shape (N, n_features) or images "
+                            f"(N, C, H, W), got shape {x.shape} of {x.dtype}")
         if raw_y.ndim != 1 or len(raw_y) != len(x):
             raise DataError(f"{path}: labels must be 1-D with one per row ({len(x)}), got shape {raw_y.shape}")
         if not np.isfinite(x).all():
             row = int(np.argwhere(~np.isfinite(x))[0][0])
             raise DataError(f"{path}: features row {row} holds a non-finite value")
         y, names = encode_labels(raw_y)
+        if x.ndim == 4:
+            image_shape = (int(x.shape[1]), int(x.shape[2]), int(x.shape[3]))
+            x = x.reshape(len(x), -1)
         x = x.astype(np.float32)
-        desc = f"{path.name}: {len(y)} rows, {x.shape[1]} features"
+        desc = f"{path.name}: {len(y)} rows, " + (
+            f"images {'x'.join(map(str, image_shape))}" if image_shape else f"{x.shape[1]} features")
     if len(names) < 2:
         raise DataError(f"{desc}: needs at least two classes, found {len(names)}")
     x_tr, y_tr, x_va, y_va = split(x, y, cfg.validation_fraction, cfg.split_seed, desc)
-    mean = x_tr.mean(axis=0)
-    std = x_tr.std(axis=0)
+    if image_shape is None:
+        mean = x_tr.mean(axis=0)
+        std = x_tr.std(axis=0)
+    else:   # one mean and spread per channel, over every training pixel: the image stays an image
+        per_channel = x_tr.reshape(len(x_tr), image_shape[0], -1).astype(np.float64)
+        pixels = image_shape[1] * image_shape[2]
+        mean = np.repeat(per_channel.mean(axis=(0, 2)), pixels)
+        std = np.repeat(per_channel.std(axis=(0, 2)), pixels)
     std[std < 1e-12] = 1.0
     x_tr = ((x_tr - mean) / std).astype(np.float32)
     x_va = ((x_va - mean) / std).astype(np.float32)
-    return Dataset(x_tr, y_tr, x_va, y_va, len(names), names, desc)
+    return Dataset(x_tr, y_tr, x_va, y_va, len(names), names, desc, image_shape)
 
 
 def split(x: np.ndarray, y: np.ndarray, fraction: float, seed: int, desc: str) -> tuple[np.ndarray, ...]:

@@ -35,25 +35,35 @@ def init_weights(cfg: ModelConfig, n_in: int, widths: tuple[int, ...], n_out: in
                  seed: int, dtype: torch.dtype = torch.float32) -> list[tuple[torch.Tensor, torch.Tensor]]:
     """Draw (weight (out, in), bias (out,)) for every layer of one seed's network."""
     g = torch.Generator().manual_seed(int(seed))
-    gain = init_gain(cfg)
     out = []
     for fan_in, fan_out in layer_sizes(n_in, widths, n_out):
-        w = torch.empty(fan_out, fan_in, dtype=torch.float64)
-        b = torch.zeros(fan_out, dtype=torch.float64)
-        if cfg.init == "default":  # what nn.Linear does: U(-1/sqrt(fan_in), 1/sqrt(fan_in))
-            bound = 1.0 / math.sqrt(fan_in)
-            w.uniform_(-bound, bound, generator=g)
-            b.uniform_(-bound, bound, generator=g)
-        elif cfg.init in ("he", "kaiming"):
-            w.normal_(0.0, gain / math.sqrt(fan_in), generator=g)
-        elif cfg.init in ("xavier", "glorot"):
-            w.normal_(0.0, gain * math.sqrt(2.0 / (fan_in + fan_out)), generator=g)
-        elif cfg.init == "orthogonal":
-            nn.init.orthogonal_(w, gain=gain, generator=g)
-        else:  # config.py admits only the names above
-            raise ConfigError(f"model.init: unknown init {cfg.init!r}")
+        w, b = draw_layer(cfg, (fan_out, fan_in), fan_in, fan_out, g)
         out.append((w.to(dtype), b.to(dtype)))
     return out
+
+
+def draw_layer(cfg: ModelConfig, shape: tuple[int, ...], fan_in: int, fan_out: int,
+               g: torch.Generator) -> tuple[torch.Tensor, torch.Tensor]:
+    """One layer's float64 (weight of `shape`, bias (shape[0],)) by the config's init, from generator g.
+
+    fan_in and fan_out as PyTorch counts them (a convolution's include its kernel's size).
+    """
+    gain = init_gain(cfg)
+    w = torch.empty(*shape, dtype=torch.float64)
+    b = torch.zeros(shape[0], dtype=torch.float64)
+    if cfg.init == "default":  # what nn.Linear and nn.Conv2d do: U(-1/sqrt(fan_in), 1/sqrt(fan_in))
+        bound = 1.0 / math.sqrt(fan_in)
+        w.uniform_(-bound, bound, generator=g)
+        b.uniform_(-bound, bound, generator=g)
+    elif cfg.init in ("he", "kaiming"):
+        w.normal_(0.0, gain / math.sqrt(fan_in), generator=g)
+    elif cfg.init in ("xavier", "glorot"):
+        w.normal_(0.0, gain * math.sqrt(2.0 / (fan_in + fan_out)), generator=g)
+    elif cfg.init == "orthogonal":
+        nn.init.orthogonal_(w, gain=gain, generator=g)
+    else:  # config.py admits only the names above
+        raise ConfigError(f"model.init: unknown init {cfg.init!r}")
+    return w, b
 
 
 def activation_module(name: str) -> nn.Module:

@@ -15,7 +15,7 @@ from ..records import CellSpec
 from .convergence import Criterion, verdict
 from .datasets import Dataset
 from .loop import BatchStream
-from .models import build_mlp
+from .families import build_network, network_input_shape
 from .probes import probe_grids
 
 __all__ = ["train_plain", "probe_plain"]
@@ -24,7 +24,7 @@ __all__ = ["train_plain", "probe_plain"]
 def train_plain(spec: CellSpec, model: ModelConfig, train: TrainConfig, data: Dataset, *,
                 n_updates: int | None = None, dtype: torch.dtype = torch.float32,
                 until_converged: bool = False) -> list[list[float]]:
-    """Reference: each seed alone, `nn.Sequential` + `torch.optim`, same init and batch order.
+    """Reference: each seed alone, its `nn.Module` (any family) + `torch.optim`, same init and batch order.
 
     Runs `n_updates` (default `train.max_updates`) updates and returns each seed's
     full-training-set loss after every `train.eval_every` updates. Used to check the
@@ -60,8 +60,10 @@ def _plain_seed(spec: CellSpec, model: ModelConfig, train: TrainConfig, data: Da
     x_val = torch.from_numpy(data.x_val).to(dtype)
     y_val = torch.from_numpy(data.y_val)
     criterion = Criterion.from_config(train.converge_when)
-    net = build_mlp(model, x.shape[1], spec.depth, data.n_classes, seed, dtype)
-    linears = [m for m in net if isinstance(m, torch.nn.Linear)]
+    shape = network_input_shape(model, data.input_shape)     # rows as the network takes them
+    x, x_val = x.view(len(x), *shape), x_val.view(len(x_val), *shape)
+    net = build_network(model, data.input_shape, spec.depth, data.n_classes, seed, dtype)
+    linears = [m for m in net.modules() if isinstance(m, (torch.nn.Linear, torch.nn.Conv2d))]
     w0 = [lin.weight.detach().clone() for lin in linears]
     if train.optimizer == "adam":
         opt: torch.optim.Optimizer = torch.optim.Adam(net.parameters(), lr=spec.learning_rate)

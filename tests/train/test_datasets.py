@@ -94,3 +94,32 @@ def test_npz_and_npy_pairs(tmp_path: Path) -> None:
         load_dataset(DataConfig(source="npy", path=str(tmp_path / "x.npy"), label_path=str(tmp_path / "y.npy")))
     with pytest.raises(DataError, match=r"no array 'labels'"):
         load_dataset(DataConfig(source="npz", path=str(tmp_path / "d.npz"), label="labels"))
+
+
+def test_digits_as_images_keep_the_pixels_in_place() -> None:
+    # scikit-learn documents load_digits' images as 8x8 arrays whose flattening is `data`
+    from sklearn.datasets import load_digits
+
+    d = load_dataset(DataConfig(source="digits_images", validation_fraction=0.0))
+    assert d.image_shape == d.input_shape == (1, 8, 8) and d.n_classes == 10
+    raw = load_digits().images.reshape(len(d.y_train), -1)
+    # one mean and spread for the whole channel (common practice for images), not one per pixel
+    expected = (raw - raw.mean()) / raw.std()
+    np.testing.assert_allclose(d.x_train, expected, atol=1e-5)
+
+
+def test_npz_images_of_shape_n_c_h_w(tmp_path: Path) -> None:
+    rng = np.random.default_rng(0)
+    x = rng.standard_normal((40, 2, 5, 4)).astype(np.float32)
+    x[:, 1] = 10 + 3 * x[:, 1]
+    np.savez(tmp_path / "imgs.npz", X=x, y=np.arange(40) % 2)
+    d = load_dataset(DataConfig(source="npz", path=str(tmp_path / "imgs.npz"), label="y", validation_fraction=0.0))
+    assert d.image_shape == (2, 5, 4) and d.x_train.shape == (40, 40)
+    per_channel = d.x_train.reshape(40, 2, -1)
+    np.testing.assert_allclose(per_channel.mean(axis=(0, 2)), 0.0, atol=1e-5)
+    np.testing.assert_allclose(per_channel.std(axis=(0, 2)), 1.0, atol=1e-5)
+    np.save(tmp_path / "bad.npy", np.zeros((4, 2, 3)))
+    np.save(tmp_path / "lab.npy", np.arange(4))
+    with pytest.raises(DataError, match=r"bad\.npy: features must be a numeric array of shape \(N, n_features\) "
+                                        r"or images \(N, C, H, W\), got shape \(4, 2, 3\)"):
+        load_dataset(DataConfig(source="npy", path=str(tmp_path / "bad.npy"), label_path=str(tmp_path / "lab.npy")))
