@@ -31,8 +31,11 @@ def _cmd_check(args: argparse.Namespace) -> int:
     from .sweep.run import output_folder, plan_cells
     from .train.datasets import load_dataset
 
+    from .sweep.sizes import check_against_data, size_lines
+
     cfg = load_config(args.config)
     data = load_dataset(cfg.data)
+    check_against_data(cfg, len(data.y_train), data.n_classes)
     cells = plan_cells(cfg)
     print(f"{args.config}: ok")
     print(f"  data     {data.description} ({len(data.y_train)} training, {len(data.y_val)} validation rows)")
@@ -40,6 +43,8 @@ def _cmd_check(args: argparse.Namespace) -> int:
           f"learning rates {', '.join(f'{lr:g}' for lr in cfg.train.learning_rate)}")
     print(f"  cells    {len(cells)} ({sum(len(c.seeds) for c in cells)} seed runs, "
           f"at most {cfg.train.max_updates} updates each)")
+    for line in size_lines(cfg):
+        print(f"  {line}")
     print(f"  output   {output_folder(cfg, args.out)}")
     return 0
 
@@ -86,9 +91,22 @@ def _train_sweep(config: Path, args: argparse.Namespace) -> Path:
         print("  tuned learning rates: " + ", ".join(f"K={k}: {lr:.3g}" for k, lr in sorted(summary.tuned_rates.items())))
     for note in summary.notes:
         print(f"  note: {note}")
-    _print_depth_table(results)
+    _print_size_tables(results)
     _fail_on_failed_cells(summary.failed, f"{summary.n_cells} cells", "run the same command again to retry them")
     return summary.folder
+
+
+def _print_size_tables(results: list) -> None:
+    """The depth table, one per proxy size when the runs span several (sweep.widths, sweep.train_rows)."""
+    from .fitting.transfer import size_of
+
+    sizes = sorted({size_of(r) for r in results})
+    if len(sizes) < 2:
+        _print_depth_table(results)
+        return
+    for w, n in sizes:
+        print(f"  proxy width {w}" + (f", {n} training rows" if n else ""))
+        _print_depth_table([r for r in results if size_of(r) == (w, n)])
 
 
 def _fail_on_failed_cells(failed: list, of: str, retry: str) -> None:

@@ -82,6 +82,7 @@ from .planning import (
     _planning_block,
 )
 from .summary import _describe, _group_warnings, _plural
+from .carry import held_out_size, trend_curve, verify_block
 from .transfer import fit_transfer, size_of, target_error
 
 __all__ = ["SCHEMA", "fit_runs", "fit_path", "default_json_path", "power_law_curve"]
@@ -254,8 +255,13 @@ def _largest(sizes: dict[tuple[int, int], list[RunResult]]) -> tuple[int, int]:
 
 
 def _transfer(sizes: dict[tuple[int, int], list[RunResult]], target: dict[str, Any] | None,
-              kw: dict[str, Any], source: str) -> dict[str, Any]:
-    """Per-size fits of each size's primary rate curve, then the trend along size (fitting.transfer)."""
+              kw: dict[str, Any], source: str, holdout: dict[str, Any] | None = None) -> dict[str, Any]:
+    """Per-size fits of each size's primary rate curve, then the trend along size (fitting.transfer).
+
+    A size that `holdout` names stays out of the trend; it is fitted on its own and compared with
+    the trend's prediction for it (`transfer.verify`, fitting.carry).
+    """
+    held = held_out_size(list(sizes), holdout)
     fits, skipped = {}, {}
     for size, rs in sizes.items():
         groups = group_runs(rs)
@@ -263,8 +269,18 @@ def _transfer(sizes: dict[tuple[int, int], list[RunResult]], target: dict[str, A
             fits[size] = _fit_group(groups[primary_group(groups)], source=f"{source or 'input'} (size {size})", **kw)
         except DataError as exc:
             skipped[size] = str(exc)
-    return fit_transfer(fits, target=target, save_fraction=kw["save_fraction"], n_boot=kw["n_boot"],
-                        seed=kw["seed"] + 7, skipped=skipped)
+    held_fit = skipped.get(held) or fits.get(held)
+    fits.pop(held, None)
+    skipped.pop(held, None)
+    block = fit_transfer(fits, target=target, save_fraction=kw["save_fraction"], n_boot=kw["n_boot"],
+                         seed=kw["seed"] + 7, skipped=skipped)
+    if held is not None and held_fit is not None:
+        block["verify"] = verify_block(fits, held, held_fit, save_fraction=kw["save_fraction"], n_boot=kw["n_boot"],
+                                       seed=kw["seed"] + 7, stored=(holdout or {}).get("stored"))
+    if block["status"] != "single_size":
+        ends = [target or {}, {"width": (held or (0, 0))[0], "train_rows": (held or (0, 0))[1]}]
+        block["curve"] = trend_curve(block, ends, n_boot=kw["n_boot"], seed=kw["seed"] + 7)
+    return block
 
 
 def _check_target(target: dict[str, Any] | None, sizes: dict[tuple[int, int], list[RunResult]]) -> None:
@@ -279,7 +295,7 @@ def _check_target(target: dict[str, Any] | None, sizes: dict[tuple[int, int], li
 
 def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int = 400,
              seed: int = 0, eval_every: int | None = None, source: str = "",
-             target: dict[str, Any] | None = None) -> dict[str, Any]:
+             target: dict[str, Any] | None = None, holdout: dict[str, Any] | None = None) -> dict[str, Any]:
     """Fit the depth law, the reversal and the planning figures to measured runs.
 
     Args:
@@ -295,6 +311,9 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
         source: name of the input, used in messages and stored in the result.
         target: the job to plan for, {"width": W, "train_rows": n} (either may be None); with
             runs at several proxy sizes the `transfer` block predicts its figures.
+        holdout: {"width": W, "train_rows": n, "stored": the prediction stored before it trained
+            (optional)}: a proxy size left out of the transfer fit and checked against its
+            prediction (`transfer.verify`); the headline still describes the largest proxy.
 
     Returns:
         The content of fit.json (schema in the module docstring and
@@ -319,7 +338,7 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
     kw = dict(save_fraction=save_fraction, n_boot=n_boot, seed=seed, eval_every=eval_every)
     transfer = None
     if len(sizes) > 1:          # the headline describes the largest proxy; the trend goes in `transfer`
-        transfer = _transfer(sizes, target, kw, source)
+        transfer = _transfer(sizes, target, kw, source, holdout)
     groups = group_runs(sizes[_largest(sizes)] if transfer is not None else known)
     primary = primary_group(groups)
     main = {"group": _group_label(primary, groups[primary]),
@@ -342,9 +361,14 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
         if transfer.get("warning"):
             notes.append(f"transfer: {transfer['warning']}")
         notes += [f"transfer to the target: {n}" for n in (transfer["target"] or {}).get("notes", [])]
+        check = transfer.get("verify")
+        if check and check["verdict"]:
+            line = f"transfer, held-out check: {check['verdict']}"
+            notes.insert(0, line) if check["inside"] is False else notes.append(line)
     result = {"schema": SCHEMA, "source": source, **main, "by_learning_rate": by_rate,
               "lr_interaction": interaction, "warnings": notes}
     if transfer is not None:
+        transfer["headline_size"] = {"width": _largest(sizes)[0] or None, "train_rows": _largest(sizes)[1] or None}
         result["transfer"] = transfer
     return _clean(result)
 
@@ -380,6 +404,11 @@ def fit_loaded(runs: list[RunResult], *, source: str, kind: str, info: dict[str,
         **kw: passed to `fit_runs`.
     """
     info = info or {}
+    if kw.get("target") is None and isinstance(info.get("target"), dict):      # the sweep file's target block
+        kw["target"] = {a: info["target"].get(a) for a in ("width", "train_rows")}
+    if kw.get("holdout") is None and isinstance(info.get("verify"), dict):     # the held-out size and its prediction
+        kw["holdout"] = {**{a: info["verify"].get(a) for a in ("width", "train_rows")},
+                         "stored": info["verify"].get("prediction")}
     kw.setdefault("eval_every", eval_interval(runs, info))
     kw.setdefault("source", source)
     fit = fit_runs(runs, **kw)
