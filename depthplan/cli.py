@@ -17,6 +17,7 @@ from .errors import ConfigError, DepthplanError, RunFailed
 log = logging.getLogger("depthplan")
 
 DEMO_CONFIG = Path(__file__).resolve().parent.parent / "configs" / "demo.yaml"
+DEMO_TRANSFER_CONFIG = DEMO_CONFIG.with_name("demo-transfer.yaml")
 
 
 class _Parser(argparse.ArgumentParser):
@@ -91,6 +92,11 @@ def _train_sweep(config: Path, args: argparse.Namespace) -> Path:
         print("  tuned learning rates: " + ", ".join(f"K={k}: {lr:.3g}" for k, lr in sorted(summary.tuned_rates.items())))
     for note in summary.notes:
         print(f"  note: {note}")
+    from .fitting.inputs import read_sweep_info
+    from .sweep.sizes import prediction_lines
+
+    for line in prediction_lines(read_sweep_info(summary.folder).get("verify")):
+        print(f"  {line}")
     _print_size_tables(results)
     _fail_on_failed_cells(summary.failed, f"{summary.n_cells} cells", "run the same command again to retry them")
     return summary.folder
@@ -164,11 +170,12 @@ def _cmd_report(args: argparse.Namespace) -> int:
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
-    if not DEMO_CONFIG.is_file():
-        raise ConfigError(f"the demo sweep {DEMO_CONFIG} is missing; run from a checkout of depthplan")
+    config = DEMO_TRANSFER_CONFIG if getattr(args, "transfer", False) else DEMO_CONFIG
+    if not config.is_file():
+        raise ConfigError(f"the demo sweep {config} is missing; run from a checkout of depthplan")
     from .reporting.write import write_report
 
-    folder = _train_sweep(DEMO_CONFIG, args)
+    folder = _train_sweep(config, args)
     paths = write_report(folder, None)
     print(f"demo report: {paths['html']}")
     return 0
@@ -252,6 +259,9 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--out", metavar="DIR", help="report folder (default: PATH's folder)")
     sp = add("demo", _cmd_demo, "train, fit and report the built-in demo sweep")
     train_opts(sp)
+    sp.add_argument("--transfer", action="store_true",
+                    help="the transfer demo instead: three proxy widths, a held-out width predicted before it "
+                         "trains, a target width (configs/demo-transfer.yaml)")
     sp = add("worker", _cmd_worker, "claim and train cells of a sweep planned in a shared store")
     sp.add_argument("--storage", metavar="URL", help="storage URL (default: $DEPTHPLAN_STORAGE)")
     sp.add_argument("--study", required=True, metavar="NAME", help="the sweep's name")

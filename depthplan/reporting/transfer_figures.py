@@ -49,12 +49,12 @@ def plot_transfer_panel(fit: dict[str, Any], ax: Axes, quantity: str) -> list[Ar
     if band:
         out.append(ax.fill_between(x_all, band["lo"], band["hi"], color=F.BLUE, alpha=0.16, lw=0, zorder=1,
                                    label="95 % prediction band of the trend"))
-        out.extend(ax.plot(x_all, band["median"], color=F.BLUE, lw=1.6, zorder=3, label=f"fitted trend of {name}"))
+        out.extend(ax.plot(x_all, band["median"], color=F.BLUE, lw=1.6, zorder=3, label="fitted trend"))
     rows = [r for r in t["sizes"] if r.get(quantity) is not None and r.get(axis)]
     for i, r in enumerate(rows):
         out.append(ax.errorbar([r[axis]], [r[quantity]], yerr=_yerr(r[quantity], r.get(f"{quantity}_ci")),
                                fmt="o", ms=6, mfc=F.BLUE, mec="black", mew=0.8, ecolor="black", capsize=2.5,
-                               zorder=5, label=f"{name} of one proxy size (95 % interval)" if i == 0 else None))
+                               zorder=5, label="one proxy size in the fit (95 % interval)" if i == 0 else None))
     out += _draw_check(ax, t, axis, quantity, name)
     out += _draw_target(ax, t, axis, quantity, name)
     ax.set_xlabel(_AXIS_WORDS.get(axis, axis))
@@ -80,11 +80,11 @@ def _draw_check(ax: Axes, t: dict[str, Any], axis: str, quantity: str, name: str
     if p.get(quantity) is not None:
         out.append(ax.errorbar([x / 1.04], [p[quantity]], yerr=_yerr(p[quantity], p.get(f"{quantity}_ci")),
                                fmt="D", ms=6, mfc="white", mec=F.VERMILLION, mew=1.4, ecolor=F.VERMILLION,
-                               capsize=3, zorder=6, label=f"held-out size: {name} predicted before it trained"))
+                               capsize=3, zorder=6, label="held-out size: predicted before it trained"))
     if m.get(quantity) is not None:
         out.append(ax.errorbar([x * 1.04], [m[quantity]], yerr=_yerr(m[quantity], m.get(f"{quantity}_ci")),
                                fmt="D", ms=6, mfc=F.VERMILLION, mec="black", mew=0.8, ecolor="black",
-                               capsize=3, zorder=6, label=f"held-out size: {name} measured"))
+                               capsize=3, zorder=6, label="held-out size: measured"))
     return out
 
 
@@ -97,5 +97,5 @@ def _draw_target(ax: Axes, t: dict[str, Any], axis: str, quantity: str, name: st
     if tg.get(quantity) is not None:
         out.append(ax.errorbar([x], [tg[quantity]], yerr=_yerr(tg[quantity], tg.get(f"{quantity}_ci")),
                                fmt="*", ms=11, mfc=F.ORANGE, mec="black", mew=0.8, ecolor=F.ORANGE,
-                               capsize=3, zorder=7, label=f"target: {name} carried along size (95 % interval)"))
+                               capsize=3, zorder=7, label="target: carried along size (95 % interval)"))
     return out

@@ -131,6 +131,8 @@ def _size_rows(t: dict[str, Any], w: Words) -> list[list[str]]:
                       if r.get("reversal_depth") else r["reversal_status"].replace("_", " ")),
                      f"{w.num(p + 'slope')} ({w.interval(p + 'slope_ci')})" if r.get("slope") is not None else "n/a",
                      w.num(p + "depth_to_plan_for", "d") if r.get("depth_to_plan_for") is not None else "n/a"])
+    for z in t.get("skipped_sizes") or []:
+        rows.append([_size(z.get("width"), z.get("train_rows")), "not fitted", "", z["reason"], "", ""])
     v = t.get("verify")
     if v and v.get("measured"):
         m, p = v["measured"], _T + "verify.measured."

@@ -209,3 +209,26 @@ def size_lines(cfg: SweepFile) -> list[str]:
 def _words(size: Size) -> str:
     return ", ".join(p for p in (f"width {size[0]}" if size[0] else "",
                                  f"{size[1]} training rows" if size[1] else "") if p)
+
+
+def prediction_lines(verify: dict[str, Any] | None) -> list[str]:
+    """What `depthplan run` prints about the held-out size's stored prediction (sweep.json's `verify`)."""
+    record = (verify or {}).get("prediction")
+    if not record:
+        return []
+    where = _words((verify.get("width") or 0, verify.get("train_rows") or 0))
+    p = record.get("prediction") or {}
+    if record.get("status") == "not_fitted" or not p:
+        return [f"held-out size ({where}): no prediction could be made from the swept sizes "
+                f"({record.get('reason') or record.get('status')})"]
+    parts = []
+    if p.get("reversal_depth") is not None:
+        lo, hi = p["reversal_depth_ci"]
+        parts.append(f"K* {p['reversal_depth']:.1f} (95 % interval {lo:.1f} to {hi:.1f})")
+    if p.get("slope") is not None:
+        parts.append(f"s {p['slope']:.2f}")
+    if p.get("depth_to_plan_for") is not None:
+        parts.append(f"depth to plan for {p['depth_to_plan_for']}")
+    return [f"held-out size ({where}) predicted before it trained, at {record['predicted_at']}: "
+            + (", ".join(parts) or f"no figures ({record.get('reason')})")
+            + "; `depthplan fit` or `report` compares it with what it measured"]
