@@ -81,7 +81,7 @@ def ensure_fit(path: Path, fit_file: Path, *, n_boot: int = 400) -> tuple[dict[s
         (the fit, a sentence saying whether it was reused or refitted and why).
     """
     path = Path(path)
-    inputs = [path / "runs.jsonl", path / "runs.csv", path / "sweep.json"] if path.is_dir() else [path]
+    inputs = [path / "runs.jsonl", path / "runs.csv"] if path.is_dir() else [path]
     fit, why = _stale_reason(fit_file, inputs)
     if fit is not None:
         return fit, f"reused {fit_file.name}: it is newer than the runs"
