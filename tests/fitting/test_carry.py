@@ -23,7 +23,7 @@ Z = 1.959963984540054
 
 def test_a_held_out_width_on_the_law_lands_inside_and_stays_out_of_the_fit():
     runs = sweep([16, 32, 64]) + sweep([128], seed=9)
-    fit = fit_runs(runs, n_boot=100, target={"width": 512, "train_rows": None}, holdout={"width": 128})
+    fit = fit_runs(runs, n_boot=60, target={"width": 512, "train_rows": None}, holdout={"width": 128})
     t = fit["transfer"]
     assert [s["width"] for s in t["sizes"]] == [16, 32, 64]          # the held-out width is not in the trend
     v = t["verify"]
@@ -32,7 +32,7 @@ def test_a_held_out_width_on_the_law_lands_inside_and_stays_out_of_the_fit():
     assert abs(v["predicted"]["reversal_depth"] / k_star(128) - 1) < 0.15
     assert v["inside"] is True and v["slope_inside"] is True and "held once" in v["verdict"]
     # the prediction equals the one a fit of the smaller widths alone makes for width 128
-    alone = fit_runs(sweep([16, 32, 64]), n_boot=100, target={"width": 128, "train_rows": None})
+    alone = fit_runs(sweep([16, 32, 64]), n_boot=60, target={"width": 128, "train_rows": None})
     assert v["predicted"]["reversal_depth"] == alone["transfer"]["target"]["reversal_depth"]
     # closed form of the widened interval on log K*
     p, m = v["predicted"], v["measured"]
@@ -49,7 +49,7 @@ def test_a_held_out_width_on_the_law_lands_inside_and_stays_out_of_the_fit():
 
 def test_a_held_out_width_off_the_law_lands_outside_and_is_said_first():
     off = sweep([128], corner=lambda w: 0.4 * k_star(w), seed=9)     # the corner at 0.4 x the law (9 layers, not 22.6)
-    fit = fit_runs(sweep([16, 32, 64]) + off, n_boot=100, holdout={"width": 128})
+    fit = fit_runs(sweep([16, 32, 64]) + off, n_boot=60, holdout={"width": 128})
     v = fit["transfer"]["verify"]
     assert v["inside"] is False and "OUTSIDE" in v["verdict"]
     assert fit["warnings"][0].startswith("transfer, held-out check: the measured K* lies OUTSIDE")
