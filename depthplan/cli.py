@@ -17,6 +17,7 @@ from .errors import ConfigError, DepthplanError, RunFailed
 log = logging.getLogger("depthplan")
 
 DEMO_CONFIG = Path(__file__).resolve().parent.parent / "configs" / "demo.yaml"
+DEMO_TRANSFER_CONFIG = DEMO_CONFIG.with_name("demo-transfer.yaml")
 
 
 class _Parser(argparse.ArgumentParser):
@@ -32,11 +33,14 @@ def _cmd_check(args: argparse.Namespace) -> int:
     from .sweep.run import output_folder, plan_cells
     from .train.datasets import load_dataset
 
+    from .sweep.sizes import check_against_data, size_lines
+
     cfg = load_config(args.config)
     data = load_dataset(cfg.data)
     if cfg.model.family_name != "mlp":    # builds the network (imports torch): a bad factory fails here
         from .sweep.run import check_sweep_model
         check_sweep_model(cfg)
+    check_against_data(cfg, len(data.y_train), data.n_classes)
     cells = plan_cells(cfg)
     check_memory(cfg, cells)
     size = plan_size(cfg, cells, available_cores())
@@ -48,6 +52,8 @@ def _cmd_check(args: argparse.Namespace) -> int:
     print(f"  cells    {len(cells)} ({sum(len(c.seeds) for c in cells)} seed runs, "
           f"at most {cfg.train.max_updates} updates each)")
     print(f"  size     {size.text()}" + ("; `run` asks for --yes" if size.large else ""))
+    for line in size_lines(cfg):
+        print(f"  {line}")
     print(f"  output   {output_folder(cfg, args.out)}")
     return 0
 
@@ -101,9 +107,27 @@ def _train_sweep(config: Path, args: argparse.Namespace) -> Path:
         print("  tuned learning rates: " + ", ".join(f"K={k}: {lr:.3g}" for k, lr in sorted(summary.tuned_rates.items())))
     for note in summary.notes:
         print(f"  note: {note}")
-    _print_depth_table(results)
+    from .fitting.inputs import read_sweep_info
+    from .sweep.sizes import prediction_lines
+
+    for line in prediction_lines(read_sweep_info(summary.folder).get("verify")):
+        print(f"  {line}")
+    _print_size_tables(results)
     _fail_on_failed_cells(summary.failed, f"{summary.n_cells} cells", "run the same command again to retry them")
     return summary.folder
+
+
+def _print_size_tables(results: list) -> None:
+    """The depth table, one per proxy size when the runs span several (sweep.widths, sweep.train_rows)."""
+    from .fitting.transfer import size_of
+
+    sizes = sorted({size_of(r) for r in results})
+    if len(sizes) < 2:
+        _print_depth_table(results)
+        return
+    for w, n in sizes:
+        print(f"  proxy width {w}" + (f", {n} training rows" if n else ""))
+        _print_depth_table([r for r in results if size_of(r) == (w, n)])
 
 
 def _fail_on_failed_cells(failed: list, of: str, retry: str) -> None:
@@ -179,8 +203,9 @@ def _cmd_report(args: argparse.Namespace) -> int:
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
-    if not DEMO_CONFIG.is_file():
-        raise ConfigError(f"the demo sweep {DEMO_CONFIG} is missing; run from a checkout of depthplan")
+    config = DEMO_TRANSFER_CONFIG if getattr(args, "transfer", False) else DEMO_CONFIG
+    if not config.is_file():
+        raise ConfigError(f"the demo sweep {config} is missing; run from a checkout of depthplan")
     from .reporting.write import write_report
 
     import json
@@ -188,12 +213,12 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     from .config import load_config
     from .sweep.run import output_folder
 
-    target = output_folder(load_config(DEMO_CONFIG), args.out)
+    target = output_folder(load_config(config), args.out)
     if (target / "runs.csv").is_file() and not (target / "store.db").exists():
         # a fresh checkout: the committed sample ships without its store, so the demo trains it again
         print(f"{target} holds the committed demo results without their store; training the demo again")
         args.over_sample = True
-    folder = _train_sweep(DEMO_CONFIG, args)
+    folder = _train_sweep(config, args)
     paths = write_report(folder, None)
     print(f"demo report: {paths['html']}")
     _print_plan(json.loads(Path(paths["fit"]).read_text(encoding="utf-8")), folder)
@@ -290,6 +315,9 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--out", metavar="DIR", help="report folder (default: PATH's folder)")
     sp = add("demo", _cmd_demo, "train, fit and report the built-in demo sweep")
     train_opts(sp)
+    sp.add_argument("--transfer", action="store_true",
+                    help="the transfer demo instead: three proxy widths, a held-out width predicted before it "
+                         "trains, a target width (configs/demo-transfer.yaml)")
     sp = add("worker", _cmd_worker, "claim and train cells of a sweep planned in a shared store")
     sp.add_argument("--storage", metavar="URL", help="storage URL (default: $DEPTHPLAN_STORAGE)")
     sp.add_argument("--study", required=True, metavar="NAME", help="the sweep's name")

@@ -117,12 +117,33 @@ class AdaptiveConfig:
 
 
 @dataclass(frozen=True)
+class SizeConfig:
+    """One proxy or target size: a hidden width and/or a number of training rows (None: unset)."""
+
+    width: int | None = None
+    train_rows: int | None = None
+
+
+@dataclass(frozen=True)
+class TargetConfig:
+    """The job to plan for: its width and training rows, and (for the report) its parameter count."""
+
+    width: int | None = None
+    train_rows: int | None = None
+    n_params: int | None = None
+
+
+@dataclass(frozen=True)
 class SweepConfig:
     depths: tuple[int, ...] = (1, 2, 3, 4, 6, 8)   # with `adaptive`: the first round
     seeds: tuple[int, ...] = (0, 1, 2, 3, 4)
     seeds_per_cell: int | None = None  # None: all seeds of a depth train as one batch
     adaptive: AdaptiveConfig | None = None
     early_censor: float | None = None  # stop a run at this multiple of the best median T so far
+    # proxy sizes (DESIGN.md section 8); None: one size, model.width on the whole training split
+    widths: tuple[int, ...] | None = None       # hidden width of every layer, one proxy size each
+    train_rows: tuple[int, ...] | None = None   # training rows drawn (stratified, seeded, nested)
+    verify: SizeConfig | None = None            # one larger held-out proxy: predicted, then trained
 
 
 @dataclass(frozen=True)
@@ -198,6 +219,7 @@ class SweepFile:
     probes: ProbeConfig
     output: OutputConfig
     source_path: str = ""
+    target: TargetConfig | None = None   # what the figures are carried to; changes no measurement
 
     def to_dict(self) -> dict[str, Any]:
         """The resolved config as plain data (what is written beside the results)."""
@@ -216,6 +238,7 @@ class SweepFile:
         d = self.to_dict()
         d.pop("output")
         d.pop("name")
+        d.pop("target", None)
         # unset (None) settings are left out, so a setting added later with a None default
         # leaves the fingerprints of sweeps stored before it unchanged
         return hashlib.sha256(json.dumps(_without_none(d), sort_keys=True).encode()).hexdigest()[:16]
@@ -379,7 +402,7 @@ def _sweep(c: Checker, raw: Any) -> SweepConfig:
     per_cell = c.take(d, "sweep", "seeds_per_cell", as_int(), None)
     early = c.take(d, "sweep", "early_censor", as_float(1.0, lo_open=True), None)
     return SweepConfig(depths=tuple(sorted(depths or dflt.depths)), seeds=seeds, seeds_per_cell=per_cell,
-                       adaptive=adaptive, early_censor=early)
+                       adaptive=adaptive, early_censor=early, **_size_axes(c, d))
 
 
 def _tune(c: Checker, raw: dict) -> tuple[TuneConfig, tuple[float, ...]]:
@@ -468,6 +491,83 @@ def _probes(c: Checker, raw: Any) -> ProbeConfig:
     )
 
 
+# --------------------------------------------------------------------------- proxy sizes and target
+
+def _size_axes(c: Checker, d: dict) -> dict[str, Any]:
+    """sweep.widths, sweep.train_rows and sweep.verify (each None when not given)."""
+    out: dict[str, Any] = {}
+    for key in ("widths", "train_rows"):
+        out[key] = None if d.get(key) is None else int_list(c, f"sweep.{key}", d[key])
+        if out[key] is not None:
+            out[key] = tuple(sorted(out[key]))
+    out["verify"] = None
+    if d.get("verify") is not None:
+        v = c.keys("sweep.verify", d["verify"], tuple(SizeConfig.__dataclass_fields__))
+        out["verify"] = SizeConfig(width=c.take(v, "sweep.verify", "width", as_int(), None),
+                                   train_rows=c.take(v, "sweep.verify", "train_rows", as_int(), None))
+        if isinstance(d["verify"], dict) and not any(k in v for k in SizeConfig.__dataclass_fields__):
+            c.add("sweep.verify", "must give width or train_rows (the larger proxy held out of the transfer fit)")
+    return out
+
+
+def _target(c: Checker, raw: Any) -> TargetConfig | None:
+    if raw is None:
+        return None
+    d = c.keys("target", raw, tuple(TargetConfig.__dataclass_fields__))
+    t = TargetConfig(width=c.take(d, "target", "width", as_int(), None),
+                     train_rows=c.take(d, "target", "train_rows", as_int(), None),
+                     n_params=c.take(d, "target", "n_params", as_int(), None))
+    if isinstance(raw, dict) and "width" not in d and "train_rows" not in d:
+        c.add("target", "must give width and/or train_rows (the job to plan for)")
+    return t
+
+
+def _check_sizes(c: Checker, cfg: SweepFile) -> None:
+    """What the sweep file alone can tell about its proxy sizes, held-out size and target."""
+    s = cfg.sweep
+    axes = {"width": s.widths, "train_rows": s.train_rows}
+    named = [f"sweep.{k}" for k, v in (("widths", s.widths), ("train_rows", s.train_rows)) if v]
+    if named and s.adaptive is not None:
+        c.add(named[0], "cannot be combined with an adaptive sweep.depths block in this version; list the depths")
+    if named and cfg.train.tune is not None:
+        c.add(named[0], "cannot be combined with the train.learning_rate tuning block in this version; "
+                        "give one or more fixed rates")
+    if s.widths and isinstance(cfg.model.width, tuple):
+        c.add("sweep.widths", "cannot be combined with a list of per-layer widths in model.width")
+    plural = {"width": "widths", "train_rows": "train_rows"}
+    if s.verify is not None:
+        for axis in ("width", "train_rows"):
+            value, swept = getattr(s.verify, axis), axes[axis]
+            if value is None:
+                continue
+            if not swept or len(swept) < 2:
+                c.add(f"sweep.verify.{axis}", f"needs sweep.{plural[axis]} with two or more values to predict it from")
+            elif value <= max(swept):
+                where = "is one of" if value in swept else "lies inside" if value > min(swept) else "is below"
+                c.add(f"sweep.verify.{axis}", f"{value} {where} the swept {plural[axis]} ({min(swept)} to "
+                      f"{max(swept)}); the held-out size must be larger than every swept one")
+    t = cfg.target
+    if t is None:
+        return
+    n_sizes = len(s.widths or (0,)) * len(s.train_rows or (0,))
+    if n_sizes < 2:
+        c.add("target", "one proxy size only (sweep.widths and sweep.train_rows give one size); a target needs "
+                        "proxies at two or more sizes to carry the depth law along size")
+        return
+    fixed = {"width": cfg.model.width if isinstance(cfg.model.width, int) else None, "train_rows": None}
+    for axis in ("width", "train_rows"):
+        value, swept = getattr(t, axis), axes[axis]
+        if value is None:
+            continue
+        if not swept or len(swept) < 2:
+            if value != (swept[0] if swept else fixed[axis]):
+                c.add(f"target.{axis}", f"the proxies do not vary sweep.{plural[axis]}, so nothing carries the "
+                      f"law along {axis}; add sweep.{plural[axis]} (two or more values) or drop target.{axis}")
+        elif value < min(swept):
+            c.add(f"target.{axis}", f"{value} is smaller than every proxy ({min(swept)} to {max(swept)}); "
+                                    "plan from the proxy itself")
+
+
 def _holds_credentials(url: str) -> bool:
     """A user name or password in the authority, or a password/secret/token query key."""
     return ("://" in url and "@" in url.split("://", 1)[1].split("/", 1)[0]) or has_credentials(url)
@@ -484,7 +584,7 @@ def _output(c: Checker, raw: Any, base: Path) -> OutputConfig:
     return OutputConfig(dir=out, storage=storage)
 
 
-TOP_KEYS = ("name", "data", "model", "sweep", "train", "probes", "output")
+TOP_KEYS = ("name", "data", "model", "sweep", "train", "probes", "output", "target")
 
 
 def parse_config(raw: Any, *, base_dir: Path, where: str = "sweep file") -> SweepFile:
@@ -516,6 +616,7 @@ def parse_config(raw: Any, *, base_dir: Path, where: str = "sweep file") -> Swee
         probes=_probes(c, top.get("probes")),
         output=_output(c, top.get("output"), base_dir),
         source_path=str(where),
+        target=_target(c, top.get("target")),
     )
     if cfg.output.dir is None and name:
         # the default folder lies beside the sweep file, whatever the working directory
@@ -523,6 +624,7 @@ def parse_config(raw: Any, *, base_dir: Path, where: str = "sweep file") -> Swee
     if cfg.model.family == "conv" and cfg.data.source not in IMAGE_SOURCES:
         c.add("model.family", f"conv needs image rows (data.source {', '.join(IMAGE_SOURCES)}: digits as 1x8x8 "
                               f"images, or arrays of shape (N, C, H, W)), got data.source {cfg.data.source}")
+    _check_sizes(c, cfg)
     if cfg.model.family_name == "mlp" and isinstance(cfg.model.width, tuple) and len(cfg.model.width) < max(cfg.sweep.depths):
         c.add("model.width", f"lists {len(cfg.model.width)} widths but sweep.depths goes to {max(cfg.sweep.depths)}")
     if c.problems:

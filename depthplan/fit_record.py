@@ -20,7 +20,7 @@ from .records import ReversalStatus
 __all__ = ["ABSENT", "Record", "FitResult", "FitGroup", "PowerLaw", "Reversal", "Planning",
            "PlannedDepth", "Diffusion", "DiffusionLayer", "DiffusionDepth", "LateWindow", "Curve", "DepthRow", "Bootstrap",
            "GroupLabel", "FitInput", "LrInteraction", "Transfer", "TransferTarget", "LackOfFit", "ModelFit",
-           "Models", "StuckRun"]
+           "Models", "StuckRun", "TransferVerify"]
 
 
 class _Absent:
@@ -385,6 +385,23 @@ class TransferTarget(Record):
 
 
 @dataclass(frozen=True)
+class TransferVerify(Record):
+    """The held-out proxy size: predicted from the other sizes (before it trained), then measured."""
+
+    width: int | None = _absent()
+    train_rows: int | None = _absent()
+    predicted: dict[str, Any] | None = _absent()
+    predicted_at: str | None = _absent()
+    prediction_source: str = _absent()
+    measured: dict[str, Any] | None = _absent()
+    compared_interval: dict[str, Any] | None = _absent()
+    inside: bool | None = _absent()
+    slope_inside: bool | None = _absent()
+    depth_inside_range: bool | None = _absent()
+    verdict: str = _absent()
+
+
+@dataclass(frozen=True)
 class Transfer(Record):
     status: str = _absent()
     reason: str = _absent()
@@ -395,6 +412,9 @@ class Transfer(Record):
     slope_law: dict[str, Any] | None = _absent()
     target: TransferTarget | None = _absent()
     warning: str = _absent()
+    verify: TransferVerify | None = _absent()
+    curve: dict[str, Any] | None = _absent()
+    headline_size: dict[str, Any] = _absent()
 
 
 @dataclass(frozen=True)

@@ -262,22 +262,32 @@ class CellSpec:
     learning_rate: float
     lr_mode: RateMode = RateMode.FIXED   # fixed | tuned | tuning
     stop_after: int | None = None     # early-censoring budget below max_updates, if any
+    width: int = 0                    # proxy size: hidden width of every layer (0: model.width)
+    train_rows: int = 0               # proxy size: training rows drawn (0: the whole split)
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "lr_mode", _as_enum(RateMode, self.lr_mode))
 
     @property
     def cell_id(self) -> str:
-        """Stable id of the cell, from what it trains (used to skip finished work)."""
+        """Stable id of the cell, from what it trains (used to skip finished work).
+
+        A proxy size adds `W<width>-` and/or `N<rows>-` in front; cells of a sweep without size
+        axes keep the ids they always had, so their stores stay resumable.
+        """
         seeds = "-".join(str(s) for s in self.seeds)
-        return f"K{self.depth}-lr{self.learning_rate:.6g}-{self.lr_mode}-s{seeds}"
+        size = (f"W{self.width}-" if self.width else "") + (f"N{self.train_rows}-" if self.train_rows else "")
+        return f"{size}K{self.depth}-lr{self.learning_rate:.6g}-{self.lr_mode}-s{seeds}"
 
     def to_dict(self) -> dict[str, Any]:
-        return {"depth": self.depth, "seeds": list(self.seeds), "learning_rate": self.learning_rate,
-                "lr_mode": self.lr_mode.value, "stop_after": self.stop_after}
+        d = {"depth": self.depth, "seeds": list(self.seeds), "learning_rate": self.learning_rate,
+             "lr_mode": self.lr_mode.value, "stop_after": self.stop_after}
+        d.update({k: v for k, v in (("width", self.width), ("train_rows", self.train_rows)) if v})
+        return d
 
     @classmethod
     def from_dict(cls, d: dict[str, Any]) -> "CellSpec":
         return cls(depth=int(d["depth"]), seeds=tuple(int(s) for s in d["seeds"]),
                    learning_rate=float(d["learning_rate"]), lr_mode=str(d.get("lr_mode", "fixed")),
-                   stop_after=None if d.get("stop_after") is None else int(d["stop_after"]))
+                   stop_after=None if d.get("stop_after") is None else int(d["stop_after"]),
+                   width=int(d.get("width") or 0), train_rows=int(d.get("train_rows") or 0))

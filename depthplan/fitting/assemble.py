@@ -99,6 +99,7 @@ from .planning import (
     _planning_block,
 )
 from .rates import rate_effect, rate_effect_words, single_rate_warning
+from .carry import held_out_size, trend_curve, verify_block
 from .transfer import fit_transfer, size_of, target_error
 from .selection import (
     N_PARAMS,
@@ -369,8 +370,13 @@ def _largest(sizes: dict[tuple[int, int], list[RunResult]]) -> tuple[int, int]:
 
 
 def _transfer(sizes: dict[tuple[int, int], list[RunResult]], target: dict[str, Any] | None,
-              kw: dict[str, Any], source: str) -> dict[str, Any]:
-    """Per-size fits of each size's primary rate curve, then the trend along size (fitting.transfer)."""
+              kw: dict[str, Any], source: str, holdout: dict[str, Any] | None = None) -> dict[str, Any]:
+    """Per-size fits of each size's primary rate curve, then the trend along size (fitting.transfer).
+
+    A size that `holdout` names stays out of the trend; it is fitted on its own and compared with
+    the trend's prediction for it (`transfer.verify`, fitting.carry).
+    """
+    held = held_out_size(list(sizes), holdout)
     fits, skipped = {}, {}
     for size, rs in sizes.items():
         groups = group_runs(rs)
@@ -378,8 +384,18 @@ def _transfer(sizes: dict[tuple[int, int], list[RunResult]], target: dict[str, A
             fits[size] = _fit_group(groups[primary_group(groups)], source=f"{source or 'input'} (size {size})", **kw)
         except DataError as exc:
             skipped[size] = str(exc)
-    return fit_transfer(fits, target=target, save_fraction=kw["save_fraction"], n_boot=kw["n_boot"],
-                        seed=kw["seed"] + 7, skipped=skipped)
+    held_fit = skipped.get(held) or fits.get(held)
+    fits.pop(held, None)
+    skipped.pop(held, None)
+    block = fit_transfer(fits, target=target, save_fraction=kw["save_fraction"], n_boot=kw["n_boot"],
+                         seed=kw["seed"] + 7, skipped=skipped)
+    if held is not None and held_fit is not None:
+        block["verify"] = verify_block(fits, held, held_fit, save_fraction=kw["save_fraction"], n_boot=kw["n_boot"],
+                                       seed=kw["seed"] + 7, stored=(holdout or {}).get("stored"))
+    if block["status"] != "single_size":
+        ends = [target or {}, {"width": (held or (0, 0))[0], "train_rows": (held or (0, 0))[1]}]
+        block["curve"] = trend_curve(block, ends, n_boot=kw["n_boot"], seed=kw["seed"] + 7)
+    return block
 
 
 def _check_target(target: dict[str, Any] | None, sizes: dict[tuple[int, int], list[RunResult]]) -> None:
@@ -395,7 +411,8 @@ def _check_target(target: dict[str, Any] | None, sizes: dict[tuple[int, int], li
 def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int = 400,
              seed: int = 0, eval_every: int | None = None, source: str = "",
              cost: str = "flops", network: dict[str, Any] | None = None,
-             seconds_are_proxy: bool = True, target: dict[str, Any] | None = None) -> dict[str, Any]:
+             seconds_are_proxy: bool = True, target: dict[str, Any] | None = None,
+             holdout: dict[str, Any] | None = None) -> dict[str, Any]:
     """Fit the depth law, the reversal and the planning figures to measured runs.
 
     Args:
@@ -419,6 +436,9 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
             their own jobs (a table), which serve when the shape is unknown.
         target: the job to plan for, {"width": W, "train_rows": n} (either may be None); with
             runs at several proxy sizes the `transfer` block predicts its figures.
+        holdout: {"width": W, "train_rows": n, "stored": the prediction stored before it trained
+            (optional)}: a proxy size left out of the transfer fit and checked against its
+            prediction (`transfer.verify`); the headline still describes the largest proxy.
 
     Returns:
         The content of fit.json (schema in the module docstring and
@@ -445,7 +465,7 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
               cost={"basis": cost, "network": network, "seconds_are_proxy": seconds_are_proxy})
     transfer = None
     if len(sizes) > 1:          # the headline describes the largest proxy; the trend goes in `transfer`
-        transfer = _transfer(sizes, target, kw, source)
+        transfer = _transfer(sizes, target, kw, source, holdout)
     groups = group_runs(sizes[_largest(sizes)] if transfer is not None else known)
     primary = primary_group(groups)
     main = {"group": _group_label(primary, groups[primary]),
@@ -470,9 +490,14 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
         if transfer.get("warning"):
             notes.append(f"transfer: {transfer['warning']}")
         notes += [f"transfer to the target: {n}" for n in (transfer["target"] or {}).get("notes", [])]
+        check = transfer.get("verify")
+        if check and check["verdict"]:
+            line = f"transfer, held-out check: {check['verdict']}"
+            notes.insert(0, line) if check["inside"] is False else notes.append(line)
     result = {"schema": SCHEMA, "source": source, **main, "by_learning_rate": by_rate,
               "lr_interaction": interaction, "warnings": notes}
     if transfer is not None:
+        transfer["headline_size"] = {"width": _largest(sizes)[0] or None, "train_rows": _largest(sizes)[1] or None}
         result["transfer"] = transfer
     return _clean(result)
 
@@ -510,6 +535,11 @@ def fit_loaded(runs: list[RunResult], *, source: str, kind: str, info: dict[str,
         **kw: passed to `fit_runs`.
     """
     info = info or {}
+    if kw.get("target") is None and isinstance(info.get("target"), dict):      # the sweep file's target block
+        kw["target"] = {a: info["target"].get(a) for a in ("width", "train_rows")}
+    if kw.get("holdout") is None and isinstance(info.get("verify"), dict):     # the held-out size and its prediction
+        kw["holdout"] = {**{a: info["verify"].get(a) for a in ("width", "train_rows")},
+                         "stored": info["verify"].get("prediction")}
     kw.setdefault("eval_every", eval_interval(runs, info))
     kw.setdefault("source", source)
     kw.setdefault("seconds_are_proxy", kind == "results_folder")   # a table's seconds are the user's jobs

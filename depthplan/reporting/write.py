@@ -31,9 +31,11 @@ from ..fitting.inputs import load_runs, read_sweep_info
 from ..records import write_text_atomic
 from . import dynamics_figures as TF
 from . import figures as F
+from . import transfer_figures as XF
 from .answer import answer_blocks, dynamics_words
 from .inputs import ReportInputs
 from .markup import Block, FigureFile, Words, to_html, to_markdown
+from .transfer_words import headline_runs, lead_blocks, section_blocks
 from .tables import (
     depth_table_blocks,
     fit_table_blocks,
@@ -143,7 +145,7 @@ def read_inputs(path: Path, fit_file: Path, *, n_boot: int = 400) -> ReportInput
     """Load the fit (refitting when needed), the runs and the folder's side files."""
     path = Path(path)
     fit, note = ensure_fit(path, fit_file, n_boot=n_boot)
-    runs = load_runs(path)
+    runs = headline_runs(fit, load_runs(path))      # with proxy sizes: the size the headline describes
     if not path.is_dir():
         return ReportInputs(path, "table", fit, note, runs)
     info = read_sweep_info(path)
@@ -332,8 +334,27 @@ def _tuning_figure(inp: ReportInputs) -> _Drawn | None:
             "Tuning objective against learning rate, one series per depth.")
 
 
+def _transfer_figure(inp: ReportInputs) -> _Drawn | None:
+    if not XF.has_transfer_figure(inp.fit):
+        return None
+    fig, axes = F.new_figure(8.6, 4.3, 2)
+    for ax, quantity in zip(axes, ("reversal_depth", "slope")):
+        XF.plot_transfer_panel(inp.fit, ax, quantity)
+        if ax.get_legend() is not None:
+            ax.get_legend().remove()
+    F.shared_legend(fig, axes, ncol=2)
+    return (fig, "transfer", "The depth law against proxy size",
+            "Left: the reversal depth K* of each proxy size (circles, 95 % bootstrap interval) against "
+            "its size on log axes, with the fitted trend and the 95 % band of its prediction; right: "
+            "the slope s the same way. Open diamonds are what the trend predicted for the held-out "
+            "size before it trained, filled diamonds what it measured; the star is the target job, "
+            "carried along the trend. The hatched field lies beyond the largest proxy in the fit: "
+            "everything drawn there is extrapolated.",
+            "Reversal depth and slope against proxy size, with the trend, the held-out check and the target.")
+
+
 _FIGURES = (_scaling_figure, _rates_figure, _cost_figure, _loss_figure, _dynamics_figure,
-            _depth_dynamics_figure, _information_figure, _tuning_figure)
+            _depth_dynamics_figure, _information_figure, _tuning_figure, _transfer_figure)
 
 
 def draw_figures(inp: ReportInputs, folder: Path) -> list[FigureFile]:
@@ -355,6 +376,7 @@ def build_blocks(inp: ReportInputs, figs: list[FigureFile]) -> list[Block]:
     w = Words(inp.fit)
     by_name = {f.name: f for f in figs}
     blocks: list[Block] = answer_blocks(inp, w)
+    blocks[1:1] = lead_blocks(inp, w)            # after the heading: the held-out check, the target's depth
 
     def section(title: str, anchor: str, *names: str) -> None:
         blocks.append(("h", 2, title, anchor))
@@ -364,6 +386,10 @@ def build_blocks(inp: ReportInputs, figs: list[FigureFile]) -> list[Block]:
 
     section("How depth changes the number of updates", "scaling", "scaling")
     blocks += fit_table_blocks(inp, w)
+    transfer = section_blocks(inp, w)
+    if transfer:
+        section("From proxies to the target", "transfer", "transfer")
+        blocks += transfer
     if "rates" in by_name or inp.fit.get("lr_interaction"):
         section("Learning rate and depth", "rates", "rates")
         blocks += rate_blocks(inp, w)

@@ -33,6 +33,17 @@ from ..records import (
     write_text_atomic,
 )
 from ..urls import redact
+from .sizes import (
+    PREDICTION_KEY,
+    all_sizes,
+    at_sizes,
+    check_sizes,
+    same_size,
+    sized_inputs,
+    stamp_rows,
+    sweep_facts,
+    swept_sizes,
+)
 from . import guards
 from .storage import (
     Heartbeat,
@@ -59,13 +70,15 @@ def _initial_state(cfg: SweepFile) -> dict[str, Any]:
     return {"seeds": {str(k): list(cfg.sweep.seeds) for k in cfg.sweep.depths}, "tuned": {}, "rounds": []}
 
 
-def plan_cells(cfg: SweepFile, state: dict[str, Any] | None = None) -> list[CellSpec]:
+def plan_cells(cfg: SweepFile, state: dict[str, Any] | None = None, *,
+               sizes: list[tuple[int, int]] | None = None) -> list[CellSpec]:
     """Every (learning rate, depth, seed block) cell of the sweep, shallow depths first.
 
     Args:
         cfg: the sweep file.
         state: the stored schedule (seeds per depth, tuned rates per depth); default: the
             sweep file's own depths and seeds, no tuned rates yet.
+        sizes: the proxy sizes (width, rows) to plan; default the swept ones (`sizes.swept_sizes`).
     """
     state = state or _initial_state(cfg)
     cells = []
@@ -83,7 +96,7 @@ def plan_cells(cfg: SweepFile, state: dict[str, Any] | None = None) -> list[Cell
     for depth in depths:
         if str(depth) in state["tuned"]:
             blocks(depth, float(state["tuned"][str(depth)]), "tuned")
-    return cells
+    return at_sizes(cells, swept_sizes(cfg) if sizes is None else sizes)
 
 
 def check_sweep_model(cfg: SweepFile) -> None:
@@ -207,6 +220,7 @@ def write_sidecars(cfg: SweepFile, folder: Path, store: SweepStore, state: dict[
             "tuned_rates": state["tuned"], "rounds": state["rounds"],
             "early_censor": cfg.sweep.early_censor, "config_file": cfg.source_path,
             "machine": machine_facts()}
+    info.update(sweep_facts(cfg, store.meta()))     # proxy sizes, held-out size, target (when set)
     write_text_atomic(folder / "sweep.json", json.dumps(info, indent=2) + "\n")
 
 
@@ -259,12 +273,13 @@ def work(store: SweepStore, cfg: SweepFile, *, progress: Callable[[int], None] |
         idle_since = None
         spec = claim.spec
         if cfg.sweep.early_censor is not None:
-            spec = replace(spec, stop_after=early_budget(store.results(), spec, cfg.sweep.early_censor,
+            spec = replace(spec, stop_after=early_budget(same_size(store.results(), spec), spec, cfg.sweep.early_censor,
                                                          cfg.train.max_updates))
         log.info("training cell %s%s", spec.cell_id, f" (stops at {spec.stop_after})" if spec.stop_after else "")
         try:
             with Heartbeat(store, claim.trial_id):
-                results = train_cell(spec, cfg.model, cfg.train, cfg.probes, data, progress=progress)
+                model, cell_data = sized_inputs(spec, cfg, data)
+                results = stamp_rows(spec, train_cell(spec, model, cfg.train, cfg.probes, cell_data, progress=progress))
         except KeyboardInterrupt:
             store.release(claim, "interrupted")
             raise
@@ -506,6 +521,7 @@ def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int | N
     guards.check_memory(cfg, plan_cells(cfg))
     if cfg.model.family_name != "mlp":   # a factory that cannot build its module fails here, before any training
         check_sweep_model(cfg)
+    check_sizes(cfg)                      # row counts against the training split, before any folder or training
     folder = output_folder(cfg, out)
     url = resolve_url(storage, cfg.output.storage, folder)
     check_url(url)
@@ -522,18 +538,44 @@ def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int | N
             torch.set_num_threads(1)   # a second thread never helped these small products, and hurts under load
         try:
             n_trained = _run_rounds(cfg, store, state, workers, show_progress, plan_only)
+            if cfg.sweep.verify is not None and not plan_only:
+                n_trained += _verify_round(cfg, folder, store, state, workers, show_progress)
         except KeyboardInterrupt:
             results = export_runs(store, folder)
             raise Interrupted(f"interrupted: {len({r.cell_id for r in results})} cells are stored "
                               f"in {folder}; run the same command again to finish the rest") from None
         results = _write_outputs(cfg, folder, store, state)
-    cells = plan_cells(cfg, state)
+    predicted = PREDICTION_KEY in store.meta()
+    cells = plan_cells(cfg, state, sizes=all_sizes(cfg) if predicted and not plan_only else None)
     failed = [] if plan_only else failed_cells(store, cells)
     if not plan_only:
         _check_finished(cells, results, failed)
     tuned = {int(k): float(v) for k, v in state["tuned"].items()}
     return SweepSummary(folder, len(cells), n_trained, len(results), time.perf_counter() - t0,
                         _status_counts(results), state["rounds"], tuned, _summary_notes(cfg, results, tuned), failed)
+
+
+def _verify_round(cfg: SweepFile, folder: Path, store: SweepStore, state: dict[str, Any], workers: int,
+                  show_progress: bool) -> int:
+    """Predict the held-out size from the stored swept sizes, store the prediction, then train it.
+
+    The prediction is made once, when every swept cell is stored, and kept (a rerun never
+    replaces it); until then the held-out size is not trained.
+    """
+    from .sizes import predict_held_out, verify_size
+
+    swept = plan_cells(cfg, state)
+    results = store.results()
+    if not {c.cell_id for c in swept} <= {r.cell_id for r in results}:
+        log.warning("%s: the held-out size waits until every swept cell is stored", cfg.name)
+        return 0
+    if PREDICTION_KEY not in store.meta():
+        record = predict_held_out(cfg, results)
+        store.set_meta(PREDICTION_KEY, record)
+        write_sidecars(cfg, folder, store, state)          # the prediction is on disk before it trains
+        log.info("%s: prediction for the held-out size stored before training it", cfg.name)
+    cells = plan_cells(cfg, state, sizes=[verify_size(cfg)])
+    return _train_round(cfg, store, cells, workers, show_progress, f"{cfg.name} held-out size", retry_failed=True)
 
 
 def _run_processes(cfg: SweepFile, store: SweepStore, workers: int, bar: Any) -> int:
