@@ -24,10 +24,10 @@ re-exports every public name (`__all__`):
                  and diffusion_summary
     summary      the warnings of fit.json and format_summary, the text the CLI prints
 
-fit.json, schema "depthplan-fit/1" (full field list in docs/fit-json.md).
+fit.json, schema "depthplan-fit/2" (full field list in docs/fit-json.md).
 Numbers are JSON numbers, null where undefined; never NaN.
 
-    schema            "depthplan-fit/1"
+    schema            "depthplan-fit/2"
     source            what was fitted (path as given)
     input             {kind: results_folder|table, sweep_name, max_updates} (fit_path only)
     group             {lr_mode, learning_rate}: the runs the top-level fields describe
@@ -116,7 +116,7 @@ from .summary import _accuracy_warnings, _describe, _group_warnings, _model_warn
 __all__ = ["SCHEMA", "fit_runs", "fit_path", "default_json_path", "power_law_curve"]
 
 
-SCHEMA = "depthplan-fit/1"
+SCHEMA = "depthplan-fit/2"
 
 
 # ---------------------------------------------------------------- one group of runs

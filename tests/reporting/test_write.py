@@ -404,7 +404,7 @@ def test_fit_is_reused_while_fresh_and_refitted_when_stale(tmp_path):
     fit_file.write_text(json.dumps(stored))
     _, note = ensure_fit(folder, fit_file, n_boot=20)
     assert "schema" in note
-    assert json.loads(fit_file.read_text())["schema"] == "depthplan-fit/1"
+    assert json.loads(fit_file.read_text())["schema"] == "depthplan-fit/2"
 
 
 def test_a_refit_keeps_the_cost_basis_the_stored_fit_asked_for(tmp_path):
