@@ -72,7 +72,10 @@ def _fewest_updates(fit: dict[str, Any], w: Words) -> str:
         text = (f"K* ≈ {w.num('reversal.depth', '.1f')}{w.ci('reversal.depth_ci', '.1f')}. Below it "
                 f"T falls as K^{{{w.num('reversal.falling_slope')}}}; past it T rises as "
                 f"K^{{{w.num('reversal.rising_slope')}}}{w.ci('reversal.rising_slope_ci')}.")
-        if rev.get("smooth_depth") is not None:
+        if rev.get("model") == "two_term" and rev.get("breakpoint") is not None:
+            text += (f" K* is the minimum of the smooth two-term model (preferred by AICc); the broken "
+                     f"stick, as a cross-check, puts its corner at K ≈ {w.num('reversal.breakpoint', '.1f')}.")
+        elif rev.get("smooth_depth") is not None:
             text += (f" A smooth two-term model, as a cross-check, puts the minimum at K ≈ "
                      f"{w.num('reversal.smooth_depth', '.1f')}.")
         return head + text
