@@ -17,7 +17,7 @@ from depthplan import fitting as F
 from depthplan.fitting import selection as S
 from depthplan.fitting.depthlaw import _Arrays, _ci
 
-from test_fitting import arrays, power, synthetic_runs
+from fitting_data import arrays, power, synthetic_runs
 
 
 def _gauss_loglik(rss: float, n: int) -> float:
