@@ -61,14 +61,7 @@ NOT_CALLABLE = 3
 '''
 
 
-@pytest.fixture(autouse=True)
-def one_thread():
-    # the plain loop, like the trainer, on one thread: on a shared 2-core machine a second thread
-    # waits for a busy core and slows both loops many times
-    before = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(before)
+pytestmark = pytest.mark.usefixtures("one_thread")     # tests/train/conftest.py
 
 
 @pytest.fixture(scope="module")
