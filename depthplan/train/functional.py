@@ -13,8 +13,10 @@ The built-in residual family skips vmap: its forward pass is a few batched matri
 stacked weights (same maths, measured faster: benchmarks/family_speed.py).
 
 Probes: per weight tensor (every parameter with two or more axes, in the module's order: input
-side first for the built-in families), the displacement ||W_t - W_0||_F and the gradient SNR over
-a window of fresh minibatches, with the same estimators (`probes.py`) as the mlp family.
+side first for the built-in families), the displacement ||W_t - W_0||_F, the gradient SNR over a
+window of fresh minibatches and (`probes.information`) the binned I(X;T), I(T;Y) of what the layer
+hands on, with the same estimators (`probes.py`, `information.py`) and the same schedule
+(`cell.py`) as the mlp family. The loop itself is `cell.run_cell`, shared with `loop.py`.
 """
 from __future__ import annotations
 
@@ -32,11 +34,13 @@ from torch.func import functional_call, stack_module_state, vmap
 from ..config import ModelConfig, ProbeConfig, TrainConfig
 from ..errors import ConfigError, first_line
 from ..records import CellSpec, RunResult
+from ..information import binned_information
 from .batches import BatchStream, _cell_tensors
-from .convergence import Criterion, verdict
+from .cell import ProbeValues, ProgressFn, Schedule, cell_results, layer_displacements, run_cell
+from .convergence import Criterion
 from .datasets import Dataset
 from .families import branch_multiplier, build_network, network_input_shape
-from .probes import displacement, gradient_snr_db, log_spaced_steps
+from .probes import gradient_snr_db
 
 #: Largest (n_seeds x rows x activations per row) block of one evaluation pass, in values.
 EVAL_BLOCK = 1 << 22
@@ -55,8 +59,10 @@ class Members:
     """
 
     def __init__(self, params: list[torch.Tensor], names: list[str], buffers: list[torch.Tensor],
-                 call: Callable[..., torch.Tensor] | None = None, direct: Forward | None = None) -> None:
-        self.params, self.names, self.buffers = params, names, buffers
+                 buffer_names: list[str], base: nn.Module, call: Callable[..., torch.Tensor] | None = None,
+                 direct: Forward | None = None) -> None:
+        self.params, self.names, self.buffers, self.buffer_names = params, names, buffers, buffer_names
+        self.base = base                     # the module on the meta device, for `functional_call`
         self._direct = direct
         if call is not None:
             self._batched = vmap(call, in_dims=(0, 0, 0))
@@ -77,6 +83,13 @@ class Members:
             return self._direct(self.params, x.expand(self.n_seeds, *x.shape))
         return self._shared(self.params, self.buffers, x)
 
+    def subset(self, rows: list[int]) -> Members:
+        """The seeds at the given rows as a batch of their own (copies; this batch is untouched)."""
+        sub = copy.copy(self)
+        sub.params, sub.buffers = list(self.params), list(self.buffers)
+        sub.keep(torch.tensor(rows, dtype=torch.long))
+        return sub
+
     def keep(self, rows: torch.Tensor) -> None:
         """Drop finished seeds: keep the given rows."""
         with torch.no_grad():
@@ -93,13 +106,13 @@ def stack_networks(nets: list[nn.Module]) -> Members:
     def call(p: list[torch.Tensor], b: list[torch.Tensor], x: torch.Tensor) -> torch.Tensor:
         return functional_call(base, ({**dict(zip(names, p)), **dict(zip(bnames, b))}), (x,))
 
-    return Members([params[n] for n in names], names, [buffers[n] for n in bnames], call=call)
+    return Members([params[n] for n in names], names, [buffers[n] for n in bnames], bnames, base, call=call)
 
 
 def _residual_members(nets: list[nn.Module], model: ModelConfig, depth: int) -> Members:
     """The built-in residual family as batched matrix products on its stacked weights (no vmap)."""
-    params, _ = stack_module_state(nets)
-    names = list(params)
+    params, buffers = stack_module_state(nets)
+    names, bnames = list(params), list(buffers)
     at = {n: i for i, n in enumerate(names)}
     act, a, norm = _ACT[model.activation], branch_multiplier(model, depth), model.norm == "layer"
 
@@ -117,7 +130,8 @@ def _residual_members(nets: list[nn.Module], model: ModelConfig, depth: int) -> 
             h = h + a * lin(p, act(z), f"blocks.{k}.linear")
         return lin(p, h, "readout")
 
-    return Members([params[n] for n in names], names, [], direct=forward)
+    return Members([params[n] for n in names], names, [buffers[n] for n in bnames], bnames,
+                   copy.deepcopy(nets[0]).to("meta"), direct=forward)
 
 
 def check_model(cfg: ModelConfig, data: Dataset, depths: tuple[int, ...]) -> None:
@@ -249,112 +263,111 @@ def _probe_tensors(members: Members) -> list[int]:
     return [i for i, p in enumerate(members.params) if p.ndim >= 3]
 
 
+class _MembersEngine:
+    """Stacked `nn.Module` seeds (`Members`) as the `cell.Engine` that `cell.run_cell` drives."""
+
+    def __init__(self, members: Members, opt: StackedOptimizer, x: torch.Tensor, y: torch.Tensor,
+                 x_eval: torch.Tensor, y_eval: torch.Tensor, x_val: torch.Tensor, y_val: torch.Tensor,
+                 x_info: torch.Tensor, y_info: np.ndarray, per_row: int, probes: ProbeConfig) -> None:
+        self.members, self.opt, self.x, self.y, self.probes = members, opt, x, y, probes
+        self.eval_set, self.val_set, self.info_set = (x_eval, y_eval), (x_val, y_val), (x_info, y_info)
+        self.per_row = per_row
+        self.weights = _probe_tensors(members)
+        self.w0 = [members.params[i].detach().clone() for i in self.weights]
+
+    def minibatches(self, rows: np.ndarray):
+        return _minibatches(self.x, self.y, rows)
+
+    def step(self, batch: tuple[torch.Tensor, torch.Tensor]) -> None:
+        self.opt.step(self.members.params, _gradients(self.members, *batch))
+
+    def evaluate(self, validation: bool) -> tuple[np.ndarray, np.ndarray]:
+        return _evaluate(self.members, *(self.val_set if validation else self.eval_set), self.per_row)
+
+    def validation(self, done: list[int], val_acc: np.ndarray) -> list[float]:
+        if np.isnan(val_acc).all():                  # not measured this block: the criterion does not need it
+            val_acc = _evaluate(self.members, *self.val_set, self.per_row)[1]
+        return [float(val_acc[k]) for k in done]
+
+    def probe(self, rows: list[int], draws: np.ndarray | None, sparse: bool) -> ProbeValues:
+        """Per weight tensor the displacement of the seeds at stack `rows`, with `draws` their gradient
+        SNR, and with `sparse` and `probes.information` their information."""
+        sub = self.members if len(rows) == self.members.n_seeds else self.members.subset(rows)
+        pick = torch.tensor(rows, dtype=torch.long)
+        disp = layer_displacements([sub.params[i] for i in self.weights], [w.index_select(0, pick) for w in self.w0])
+        snr = None
+        if draws is not None:
+            grads = []
+            for j in range(draws.shape[1]):
+                idx = torch.from_numpy(draws[:, j].reshape(-1))
+                g = _gradients(sub, self.x.index_select(0, idx).view(len(rows), -1, *self.x.shape[1:]),
+                               self.y.index_select(0, idx).view(len(rows), -1))
+                grads.append([g[i].numpy() for i in self.weights])
+            snr = [gradient_snr_db(np.stack([d[k] for d in grads])) for k in range(len(self.weights))]
+        info = _information(sub, self.weights, *self.info_set, self.probes.bins) \
+            if sparse and self.probes.information else None
+        return disp, snr, info
+
+    def keep(self, rows: torch.Tensor) -> None:
+        self.members.keep(rows)
+        self.opt.keep(rows)
+        self.w0 = [w.index_select(0, rows) for w in self.w0]
+
+
+def _information(members: Members, weights: list[int], x: torch.Tensor, y: np.ndarray,
+                 n_bins: int) -> list[list[tuple[float, float]]]:
+    """Per seed, per weight tensor (I(X;T), I(T;Y)) in bits on the fixed batch (x, y), by binning.
+
+    A layer's representation T is what it hands on: the input of the next weight tensor's module
+    (for an mlp, the hidden layer's activations, as the mlp trainer takes them), and for the last
+    one the softmax of the logits. Each seed runs alone through the module with forward pre-hooks,
+    as hooks cannot hand tensors out of vmap. A representation the forward pass never reaches
+    (a module not called) is NaN.
+    """
+    modules = dict(members.base.named_modules())
+    owners = [modules[members.names[i].rpartition(".")[0]] for i in weights]
+    out: list[list[tuple[float, float]]] = []
+    for k in range(members.n_seeds):
+        seen: dict[int, torch.Tensor] = {}
+        hooks = [m.register_forward_pre_hook(lambda _m, args, j=j: seen.setdefault(j, args[0]))
+                 for j, m in enumerate(owners[1:])]
+        state = {**{n: p[k].detach() for n, p in zip(members.names, members.params)},
+                 **{n: b[k] for n, b in zip(members.buffer_names, members.buffers)}}
+        try:
+            with torch.no_grad():
+                logits = functional_call(members.base, state, (x,))
+        finally:
+            for h in hooks:
+                h.remove()
+        outs = [seen.get(j) for j in range(len(owners) - 1)] + [torch.softmax(logits, dim=1)]
+        out.append([(math.nan, math.nan) if o is None else binned_information(o.reshape(len(o), -1).numpy(), y, n_bins)
+                    for o in outs])
+    return out
+
+
 def train_cell_functional(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: ProbeConfig,
-                          data: Dataset, progress: Callable[[int], None] | None, dtype: torch.dtype,
+                          data: Dataset, progress: ProgressFn | None, dtype: torch.dtype,
                           eval_rows: int | None) -> list[RunResult]:
-    """`loop.train_cell` for every family but mlp: same arguments, same stopping rules, same records."""
+    """`loop.train_cell` for every family but mlp: same arguments, stopping rules, probe schedule and records."""
     t_start = time.perf_counter()
     t = _cell_tensors(data, dtype, eval_rows)
     shape = network_input_shape(model, data.input_shape)
-    x, x_eval, x_val = (v.view(len(v), *shape) for v in (t.x, t.x_eval, t.x_val))
-    y = torch.from_numpy(data.y_train)
-    criterion = Criterion.from_config(train.converge_when)
+    x, x_eval, x_val, x_info = (v.view(len(v), *shape) for v in (t.x, t.x_eval, t.x_val, t.x_info))
     budget = min(train.max_updates, spec.stop_after or train.max_updates)
-    seeds = spec.seeds
-    members = build_members(model, data, spec.depth, seeds, dtype)
+    members = build_members(model, data, spec.depth, spec.seeds, dtype)
     first = [p[0] for p in members.params]
     # activations of one row of one seed, at most: the widest layer times the image's pixels
     per_row = max(math.prod(shape), max(p.shape[0] for p in first) * (math.prod(shape[1:]) if len(shape) == 3 else 1))
-    weights = _probe_tensors(members)
-    w0 = [members.params[i].detach().clone() for i in weights]
-    streams = [BatchStream(s, x.shape[0], train.batch_size) for s in seeds]
-    opt = StackedOptimizer(train, spec.learning_rate, members.params)
-    probe_rngs = [np.random.default_rng([int(s), 0x5A1]) for s in seeds]
-    probe_at = set(log_spaced_steps(budget, probes.n_points)) if (probes.displacement or probes.snr) else set()
-
-    active = list(range(len(seeds)))
-    curves: list[list[tuple[int, float]]] = [[] for _ in seeds]
-    probe_log: list[list[tuple[int, list[float], list[float]]]] = [[] for _ in seeds]
-    seat_time = np.zeros(len(seeds))
-    ended: dict[int, dict] = {}
-    step = 0
-
-    def probe() -> None:
-        disp = [displacement(members.params[i].detach().numpy(), w.numpy()) for i, w in zip(weights, w0)]
-        snr = [np.full(len(active), math.nan)] * len(weights)
-        if probes.snr:
-            rows = np.stack([probe_rngs[a].integers(0, x.shape[0], (probes.snr_window, streams[a].batch))
-                             for a in active])                              # (n_active, window, batch)
-            draws = []
-            for j in range(probes.snr_window):
-                idx = torch.from_numpy(rows[:, j].reshape(-1))
-                g = _gradients(members, x.index_select(0, idx).view(len(active), -1, *shape),
-                               y.index_select(0, idx).view(len(active), -1))
-                draws.append([g[i].numpy() for i in weights])
-            snr = [gradient_snr_db(np.stack([d[k] for d in draws])) for k in range(len(weights))]
-        for k, a in enumerate(active):
-            probe_log[a].append((step, [float(d[k]) for d in disp], [float(s[k]) for s in snr]))
-
-    while active:
-        t_block = time.perf_counter()
-        n = min(train.eval_every - step % train.eval_every, budget - step)
-        rows = np.stack([streams[a].take(n) for a in active])               # (n_active, n, batch)
-        for xb, yb in _minibatches(x, y, rows):
-            if step in probe_at:
-                probe()
-            opt.step(members.params, _gradients(members, xb, yb))
-            step += 1
-        if step in probe_at and step == budget:
-            probe()
-        loss, acc = _evaluate(members, x_eval, t.y_eval, per_row)
-        val_acc = np.full(len(active), math.nan)
-        if criterion.needs_validation and len(t.y_val):
-            val_acc = _evaluate(members, x_val, t.y_val, per_row)[1]
-        done, keep = [], []
-        for k, a in enumerate(active):
-            curves[a].append((step, float(loss[k])))
-            v = verdict(criterion, step, budget, float(loss[k]), float(acc[k]), float(val_acc[k]))
-            (keep if v is None else done).append(k)
-            if v is not None:
-                ended[a] = {"status": v, "iterations": step, "loss": float(loss[k]), "acc": float(acc[k])}
-        seat_time[active] += (time.perf_counter() - t_block) / len(active)
-        if done and len(t.y_val):
-            val = val_acc if criterion.needs_validation else _evaluate(members, x_val, t.y_val, per_row)[1]
-            for k in done:
-                ended[active[k]]["val"] = float(val[k])
-        if done:
-            rows_kept = torch.tensor(keep, dtype=torch.long)       # finished seeds leave the batch
-            members.keep(rows_kept)
-            opt.keep(rows_kept)
-            w0 = [w.index_select(0, rows_kept) for w in w0]
-        if progress is not None:
-            progress(n * len(active) + len(done) * (budget - step))
-        active = [active[k] for k in keep]
-
-    elapsed = time.perf_counter() - t_start
-    setup = (elapsed - seat_time.sum()) / len(seeds)
-    n_params = sum(p.numel() for p in first)
-    width = model.conv_channels if model.family_name == "conv" else int(first[0].shape[0])
-    return [_result(spec, model, train, probes, seed, ended[a], float(seat_time[a] + setup), curves[a],
-                    probe_log[a], n_params, width, len(weights))
-            for a, seed in enumerate(seeds)]
-
-
-def _result(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: ProbeConfig, seed: int, end: dict,
-            wall: float, curve: list[tuple[int, float]], plog: list[tuple[int, list[float], list[float]]],
-            n_params: int, width: int, n_layers: int) -> RunResult:
-    """One seed's `RunResult` from what its cell recorded."""
+    streams = [BatchStream(s, x.shape[0], train.batch_size) for s in spec.seeds]
+    engine = _MembersEngine(members, StackedOptimizer(train, spec.learning_rate, members.params),
+                            x, torch.from_numpy(data.y_train), x_eval, t.y_eval, x_val, t.y_val, x_info, t.y_info,
+                            per_row, probes)
+    log = run_cell(engine, Schedule.build(probes, budget, spec.seeds, x.shape[0]), streams,
+                   Criterion.from_config(train.converge_when), budget, train.eval_every, len(t.y_val) > 0, progress)
     own = model.family_name != "factory"
-    return RunResult(
-        depth=spec.depth, width=width, seed=seed, learning_rate=spec.learning_rate,
-        status=end["status"], iterations=end["iterations"], wall_seconds=wall,
-        seconds_per_update=wall / max(1, end["iterations"]),
-        final_train_loss=end["loss"], final_train_accuracy=end["acc"],
-        validation_accuracy=end.get("val", math.nan), n_params=n_params,
-        activation=model.activation if own else "", init=model.init if own else "", optimizer=train.optimizer,
-        lr_mode=spec.lr_mode, cell_id=spec.cell_id, family=model.family_name, model_options=model.options_text(),
-        eval_steps=tuple(s for s, _ in curve), train_loss=tuple(v for _, v in curve),
-        probe_steps=tuple(p[0] for p in plog),
-        displacement=tuple(tuple(p[1][i] for p in plog) for i in range(n_layers)) if probes.displacement and plog else (),
-        snr_db=tuple(tuple(p[2][i] for p in plog) for i in range(n_layers)) if probes.snr and plog else (),
-    )
+    return cell_results(
+        spec, train, probes, log, time.perf_counter() - t_start, len(engine.weights),
+        width=model.conv_channels if model.family_name == "conv" else int(first[0].shape[0]),
+        n_params=sum(p.numel() for p in first),
+        activation=model.activation if own else "", init=model.init if own else "",
+        family=model.family_name, model_options=model.options_text())

@@ -7,7 +7,8 @@ CPU spends most of its time on networks this small. Each seed keeps its own
 initial weights and its own minibatch order, so its trajectory equals what a
 plain per-seed `nn.Sequential` + `torch.optim` loop computes (`reference.train_plain`,
 for the tests and the benchmark). Seeds that finish leave the batch.
-The batched maths (forward, backward, optimiser, evaluation) is in `stacked.py`.
+The batched maths (forward, backward, optimiser, evaluation) is in `stacked.py`; the per-cell loop,
+probe schedule and records, shared with the other families' trainer, in `cell.py`.
 
 What the speed comes from, measured on a 2-core CPU (benchmarks/trainer_speed.py):
 plain SGD folds the gradient product into the update (`W.baddbmm_(h^T, g)`,
@@ -22,10 +23,7 @@ and each compiled call's Python wrapper cost more than it saved.
 """
 from __future__ import annotations
 
-import math
 import time
-from dataclasses import dataclass
-from typing import Callable
 
 import numpy as np
 import torch
@@ -33,15 +31,12 @@ import torch
 from ..config import ModelConfig, ProbeConfig, TrainConfig
 from ..errors import ConfigError
 from ..records import CellSpec, RunResult
-from .batches import BatchStream, _CellTensors, _cell_tensors, _eval_subset  # noqa: F401 (tests import them from here)
-from .convergence import Criterion, verdict
+from .batches import INFORMATION_ROWS, BatchStream, _CellTensors, _cell_tensors, _eval_subset  # noqa: F401 (tests import them from here)
+from .cell import ProbeValues, ProgressFn, Schedule, cell_results, layer_displacements, run_cell
+from .convergence import Criterion
 from .datasets import Dataset
 from .models import count_params, init_weights
-from .probes import displacement, probe_grids
 from .stacked import _evaluate, _gradient_snr, _information, _minibatches, _Optimizer, _Stack
-
-ProgressFn = Callable[[int], None]
-
 
 
 # --------------------------------------------------------------------------- one cell
@@ -96,51 +91,43 @@ def train_cell(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: P
             torch.set_num_threads(before)
 
 
-#: One probe of one seed: (step, displacement per layer, SNR per layer or None,
-#: (I(X;T), I(T;Y)) per layer or None). SNR and information are measured on the sparse grid only.
-Probe = tuple[int, list[float], "list[float] | None", "list[tuple[float, float]] | None"]
+class _MlpEngine:
+    """The mlp family's stacked seeds (`stacked.py`) as the `cell.Engine` that `cell.run_cell` drives."""
 
+    def __init__(self, stack: _Stack, opt: _Optimizer, t: _CellTensors, act: str, probes: ProbeConfig) -> None:
+        self.stack, self.opt, self.t, self.act, self.probes = stack, opt, t, act, probes
+        self.w0 = [w.clone() for w in stack.ws]
 
-@dataclass
-class _CellSetup:
-    """A cell's trainable state: stacked weights, their initial copy, minibatch streams, optimiser, probes.
+    def minibatches(self, rows: np.ndarray):
+        return _minibatches(self.t.x, self.t.onehot, rows)
 
-    `dense_at` holds the displacement's probe steps, `sparse_at` (a subset) those where the gradient
-    SNR and the information are measured too; every seed is also probed at its own last step.
-    """
+    def step(self, batch: tuple[torch.Tensor, torch.Tensor]) -> None:
+        self.opt.step(*batch, self.act)
 
-    stack: _Stack
-    w0: list[torch.Tensor]
-    streams: list[BatchStream]
-    opt: _Optimizer
-    probe_rngs: list[np.random.Generator]
-    dense_at: set[int]
-    sparse_at: set[int]
+    def evaluate(self, validation: bool) -> tuple[np.ndarray, np.ndarray]:
+        if validation:
+            return _evaluate(self.stack, self.t.x_val, self.t.y_val, self.act)
+        return _evaluate(self.stack, self.t.x_eval, self.t.y_eval, self.act)
 
-    def probe(self, step: int, rows: list[int], active: list[int], t: _CellTensors, probes: ProbeConfig,
-              act: str, probe_log: list[list[Probe]], *, sparse: bool) -> None:
-        """Log the seeds at stack `rows` (positions `active[k]`): layer displacements, and with
-        `sparse` their gradient SNR and information at `step`."""
+    def validation(self, done: list[int], val_acc: np.ndarray) -> list[float]:
+        """Validation accuracy of the seeds at rows `done` of the stack."""
+        rows_done = torch.tensor(done)
+        finished = _Stack([w.index_select(0, rows_done) for w in self.stack.ws],
+                          [b.index_select(0, rows_done) for b in self.stack.bs])
+        return [float(v) for v in _evaluate(finished, self.t.x_val, self.t.y_val, self.act)[1]]
+
+    def probe(self, rows: list[int], draws: np.ndarray | None, sparse: bool) -> ProbeValues:
+        """Layer displacements of the seeds at stack `rows`, and with `sparse` their gradient SNR and information."""
         every = len(rows) == self.stack.n_seeds
         pick = None if every else torch.tensor(rows, dtype=torch.long)
         ws = self.stack.ws if every else [w.index_select(0, pick) for w in self.stack.ws]
         w0 = self.w0 if every else [w.index_select(0, pick) for w in self.w0]
-        disp = [displacement(w.detach().numpy(), w_init.detach().numpy()) for w, w_init in zip(ws, w0)]
         sub = self.stack if every else _Stack(ws, [b.index_select(0, pick) for b in self.stack.bs])
-        snr: list[np.ndarray] | None = None
-        info: list[list[tuple[float, float]]] | None = None
-        if sparse and probes.snr:
-            n_rows = t.x.shape[0]
-            draws = np.stack([self.probe_rngs[active[k]].integers(0, n_rows, (probes.snr_window,
-                                                                               self.streams[active[k]].batch))
-                              for k in rows])
-            snr = _gradient_snr(sub, t.x, t.onehot, draws, act)
-        if sparse and probes.information:
-            info = _information(sub, t.x_info, t.y_info, act, probes.bins)
-        for i, k in enumerate(rows):
-            probe_log[active[k]].append((step, [float(d[i]) for d in disp],
-                                         None if snr is None else [float(s[i]) for s in snr],
-                                         None if info is None else info[i]))
+        snr = None if draws is None else _gradient_snr(sub, self.t.x, self.t.onehot, draws, self.act)
+        info = None
+        if sparse and self.probes.information:
+            info = _information(sub, self.t.x_info, self.t.y_info, self.act, self.probes.bins)
+        return layer_displacements(ws, w0), snr, info
 
     def keep(self, rows: torch.Tensor) -> None:
         """Drop finished seeds from the batch: keep the given rows of weights, state and initial weights."""
@@ -148,129 +135,23 @@ class _CellSetup:
         self.w0 = [w.index_select(0, rows) for w in self.w0]
 
 
-def _cell_setup(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: ProbeConfig, n_classes: int,
-                x: torch.Tensor, budget: int, dtype: torch.dtype) -> _CellSetup:
-    """Stack the seeds' initial weights and build their minibatch streams, optimiser and probe schedule."""
-    n_rows, n_in = x.shape
-    stack = _Stack(*stacked_weights(model, n_in, spec.depth, n_classes, spec.seeds, dtype))
-    w0 = [w.clone() for w in stack.ws]
-    streams = [BatchStream(s, n_rows, train.batch_size) for s in spec.seeds]
-    opt = _Optimizer(train, spec.learning_rate, stack, streams[0].batch)
-    probe_rngs = [np.random.default_rng([int(s), 0x5A1]) for s in spec.seeds]
-    dense, sparse = probe_grids(budget, probes.n_points) if probes.any else ([], [])
-    sparse_at = set(sparse)
-    dense_at = set(dense) if probes.displacement else set(sparse)
-    return _CellSetup(stack, w0, streams, opt, probe_rngs, dense_at, sparse_at)
-
-
-def _validation_of(stack: _Stack, done: list[int], t: _CellTensors, act: str) -> list[float]:
-    """Validation accuracy of the seeds at rows `done` of the stack."""
-    rows_done = torch.tensor(done)
-    finished = _Stack([w.index_select(0, rows_done) for w in stack.ws],
-                      [b.index_select(0, rows_done) for b in stack.bs])
-    return [float(v) for v in _evaluate(finished, t.x_val, t.y_val, act)[1]]
-
-
 def _train_cell(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: ProbeConfig, data: Dataset,
                 progress: ProgressFn | None, dtype: torch.dtype, eval_rows: int | None) -> list[RunResult]:
     t_start = time.perf_counter()
     t = _cell_tensors(data, dtype, eval_rows)
-    act = model.activation
-    criterion = Criterion.from_config(train.converge_when)
     budget = min(train.max_updates, spec.stop_after or train.max_updates)
-    seeds = spec.seeds
-    cell = _cell_setup(spec, model, train, probes, data.n_classes, t.x, budget, dtype)
-
-    active = list(range(len(seeds)))                   # positions in `seeds` still training
-    curves: list[list[tuple[int, float]]] = [[] for _ in seeds]
-    probe_log: list[list[Probe]] = [[] for _ in seeds]
-    seat_time = np.zeros(len(seeds))
-    ended: dict[int, dict] = {}
-    step = 0
-
-    while active:
-        t_block = time.perf_counter()
-        n = min(train.eval_every - step % train.eval_every, budget - step)
-        rows = np.stack([cell.streams[a].take(n) for a in active])       # (n_active, n, batch)
-        for xb, target in _minibatches(t.x, t.onehot, rows):
-            if step in cell.dense_at:
-                cell.probe(step, list(range(len(active))), active, t, probes, act, probe_log,
-                           sparse=step in cell.sparse_at)
-            cell.opt.step(xb, target, act)
-            step += 1
-        loss, acc = _evaluate(cell.stack, t.x_eval, t.y_eval, act)
-        val_acc = np.full(len(active), math.nan)
-        if criterion.needs_validation and len(t.y_val):
-            val_acc = _evaluate(cell.stack, t.x_val, t.y_val, act)[1]
-        done, keep = [], []
-        for k, a in enumerate(active):
-            curves[a].append((step, float(loss[k])))
-            v = verdict(criterion, step, budget, float(loss[k]), float(acc[k]), float(val_acc[k]))
-            (keep if v is None else done).append(k)
-            if v is not None:
-                ended[a] = {"status": v, "iterations": step, "loss": float(loss[k]), "acc": float(acc[k])}
-        ending = [k for k in done if ended[active[k]]["status"] != "diverged"]
-        if ending and cell.dense_at:       # each seed's probes end at its own last step T
-            cell.probe(step, ending, active, t, probes, act, probe_log, sparse=True)
-        seat_time[active] += (time.perf_counter() - t_block) / len(active)
-        if done:
-            if len(t.y_val):
-                for k, v in zip(done, _validation_of(cell.stack, done, t, act)):
-                    ended[active[k]]["val"] = v
-            cell.keep(torch.tensor(keep, dtype=torch.long))         # finished seeds leave the batch
-        if progress is not None:
-            progress(n * len(active) + len(done) * (budget - step))
-        active = [active[k] for k in keep]
-
-    return _cell_results(spec, model, train, probes, data, ended, seat_time, time.perf_counter() - t_start,
-                         curves, probe_log)
-
-
-def _cell_results(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: ProbeConfig, data: Dataset,
-                  ended: dict[int, dict], seat_time: np.ndarray, elapsed: float,
-                  curves: list[list[tuple[int, float]]], probe_log: list[list[Probe]]) -> list[RunResult]:
-    """Every seed's `RunResult`, the cell's setup time (`elapsed` less the seats' time) shared evenly."""
-    setup = (elapsed - seat_time.sum()) / len(spec.seeds)
-    return [_result(spec, model, train, probes, data, seed, ended[a], float(seat_time[a] + setup),
-                    curves[a], probe_log[a])
-            for a, seed in enumerate(spec.seeds)]
-
-
-def _probe_fields(probes: ProbeConfig, plog: list[Probe], n_layers: int) -> dict:
-    """One seed's probe series as `RunResult` fields: displacement at every probe step, SNR and
-    information at the sparse ones (`snr_steps`)."""
-    if not plog:
-        return {}
-    sparse = [p for p in plog if p[2] is not None or p[3] is not None]
-    out: dict = {"probe_steps": tuple(p[0] for p in plog)}
-    if probes.displacement:
-        out["displacement"] = tuple(tuple(p[1][i] for p in plog) for i in range(n_layers))
-    out["snr_steps"] = tuple(p[0] for p in sparse)
-    if probes.snr:
-        out["snr_db"] = tuple(tuple(p[2][i] for p in sparse) for i in range(n_layers))
-    if probes.information:
-        out["information_xt"] = tuple(tuple(p[3][i][0] for p in sparse) for i in range(n_layers))
-        out["information_ty"] = tuple(tuple(p[3][i][1] for p in sparse) for i in range(n_layers))
-    return out
-
-
-def _result(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: ProbeConfig, data: Dataset,
-            seed: int, end: dict, wall: float, curve: list[tuple[int, float]], plog: list[Probe]) -> RunResult:
-    """One seed's `RunResult` from what its cell recorded."""
+    n_rows, n_in = t.x.shape
+    stack = _Stack(*stacked_weights(model, n_in, spec.depth, data.n_classes, spec.seeds, dtype))
+    streams = [BatchStream(s, n_rows, train.batch_size) for s in spec.seeds]
+    engine = _MlpEngine(stack, _Optimizer(train, spec.learning_rate, stack, streams[0].batch), t,
+                        model.activation, probes)
+    log = run_cell(engine, Schedule.build(probes, budget, spec.seeds, n_rows), streams,
+                   Criterion.from_config(train.converge_when), budget, train.eval_every, len(t.y_val) > 0, progress)
     widths = model.widths(spec.depth)
-    n_layers = len(widths) + 1
-    return RunResult(
-        depth=spec.depth, width=widths[0], seed=seed, learning_rate=spec.learning_rate,
-        status=end["status"], iterations=end["iterations"], wall_seconds=wall,
-        seconds_per_update=wall / max(1, end["iterations"]),
-        final_train_loss=end["loss"], final_train_accuracy=end["acc"],
-        validation_accuracy=end.get("val", math.nan),
-        n_params=count_params(data.n_features, widths, data.n_classes),
-        activation=model.activation, init=model.init, optimizer=train.optimizer,
-        lr_mode=spec.lr_mode, cell_id=spec.cell_id,
+    return cell_results(
+        spec, train, probes, log, time.perf_counter() - t_start, len(widths) + 1,
+        width=widths[0], n_params=count_params(data.n_features, widths, data.n_classes),
+        activation=model.activation, init=model.init,
         # the network's shape, so that the fit can count the FLOPs of an update on any machine
         extra={"network": {"n_inputs": data.n_features, "n_classes": data.n_classes,
-                           "widths": list(widths), "batch_size": train.batch_size}},
-        eval_steps=tuple(s for s, _ in curve), train_loss=tuple(v for _, v in curve),
-        **_probe_fields(probes, plog, n_layers),
-    )
+                           "widths": list(widths), "batch_size": train.batch_size}})

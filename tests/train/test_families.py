@@ -13,11 +13,13 @@ import torch
 from depthplan.config import ConvergeConfig, DataConfig, ModelConfig, ProbeConfig, TrainConfig
 from depthplan.errors import ConfigError
 from depthplan.records import CellSpec
+from depthplan.train.batches import INFORMATION_ROWS
 from depthplan.train.datasets import load_dataset
 from depthplan.train.families import ConvNet, ResidualNet, build_network
 from depthplan.train.functional import check_model
 from depthplan.train.loop import train_cell
-from depthplan.train.reference import train_plain
+from depthplan.information import binned_information
+from depthplan.train.reference import probe_plain, train_plain
 
 NO_PROBES = ProbeConfig(displacement=False, snr=False)
 NEVER = ConvergeConfig(train_loss_below=1e-12)
@@ -59,14 +61,7 @@ NOT_CALLABLE = 3
 '''
 
 
-@pytest.fixture(autouse=True)
-def one_thread():
-    # the plain loop, like the trainer, on one thread: on a shared 2-core machine a second thread
-    # waits for a busy core and slows both loops many times
-    before = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(before)
+pytestmark = pytest.mark.usefixtures("one_thread")     # tests/train/conftest.py
 
 
 @pytest.fixture(scope="module")
@@ -147,6 +142,57 @@ def test_factory_path_reproduces_the_builtin_mlp_with_probes(tab, factory_dir, o
         assert (a.family, b.family) == ("mlp", "factory") and b.model_options == "my_nets:mlp {}"
     f32 = train_cell(spec, _factory(factory_dir, "mlp"), train, NO_PROBES, tab)
     np.testing.assert_allclose(_curves(f32), _curves(builtin), rtol=1e-4)
+
+
+def test_factory_path_probes_each_seed_at_its_own_t_as_the_builtin_mlp(tab, factory_dir) -> None:
+    # reference: depthplan's own mlp trainer (loop.py), whose schedule and information probe
+    # tests/train/test_loop.py checks against the plain per-seed loop. Seeds converge at different
+    # T (invented threshold), so each one's dense and sparse probe lists end at its own T.
+    spec = CellSpec(depth=2, seeds=(0, 1, 2), learning_rate=0.05)
+    train = replace(_train(300, "sgd"), eval_every=10, converge_when=ConvergeConfig(train_loss_below=0.9))
+    probes = ProbeConfig(n_points=5, snr_window=4, information=True, information_bins=10)
+    builtin = train_cell(spec, ModelConfig(width=8), train, probes, tab, dtype=torch.float64)
+    factory = train_cell(spec, _factory(factory_dir, "mlp"), train, probes, tab, dtype=torch.float64)
+    assert len({r.iterations for r in builtin}) > 1 and all(r.status == "converged" for r in builtin)
+    for a, b in zip(builtin, factory):
+        assert (b.status, b.iterations, b.probe_steps, b.snr_steps) == (a.status, a.iterations, a.probe_steps,
+                                                                        a.snr_steps)
+        assert b.probe_steps[-1] == b.snr_steps[-1] == b.iterations
+        assert len(b.probe_steps) > len(b.snr_steps) and set(b.snr_steps) <= set(b.probe_steps)
+        np.testing.assert_allclose(b.displacement, a.displacement, rtol=1e-9)
+        np.testing.assert_allclose(b.snr_db, a.snr_db, rtol=1e-7)
+        np.testing.assert_allclose(b.information_xt, a.information_xt, atol=1e-9)
+        np.testing.assert_allclose(b.information_ty, a.information_ty, atol=1e-9)
+
+
+def test_residual_information_at_t_equals_the_estimator_on_the_plain_network(tab) -> None:
+    # reference: the plain per-seed ResidualNet (torch.optim, reference.probe_plain) at the same T,
+    # walked by hand: each weight layer's representation is the input of the next weight layer
+    # (a block's act(norm(h)), the stream h before the readout) and the readout's softmax, put
+    # through the binning estimator (checked against closed forms in tests/test_information.py)
+    model, spec = ModelConfig(width=8, family="residual", norm="layer"), CellSpec(depth=2, seeds=(0, 1),
+                                                                                  learning_rate=0.05)
+    train = replace(_train(60, "sgd"), eval_every=20)
+    probes = ProbeConfig(n_points=5, snr_window=4, information=True, information_bins=10)
+    results = train_cell(spec, model, train, probes, tab, dtype=torch.float64)
+    plain = probe_plain(spec, model, train, probes, tab, dtype=torch.float64)
+    x = torch.from_numpy(tab.x_train).double()
+    assert len(x) <= INFORMATION_ROWS                   # the probe's fixed batch is the whole training set
+    for r, p in zip(results, plain):
+        assert r.snr_steps[-1] == r.iterations == p["iterations"] == 60 and r.probe_steps == tuple(p["probe_steps"])
+        net, reps = p["net"], []
+        with torch.no_grad():
+            h = net.input(x)
+            for block in net.blocks:
+                reps.append(block.act(block.norm(h)))
+                h = h + net.branch * block(h)
+            reps += [h, torch.softmax(net.readout(h), dim=1)]
+        assert len(r.information_xt) == len(reps) == 4
+        for j, o in enumerate(reps):
+            i_xt, i_ty = binned_information(o.numpy(), tab.y_train, 10)
+            assert r.information_xt[j][-1] == pytest.approx(i_xt, abs=1e-9)
+            assert r.information_ty[j][-1] == pytest.approx(i_ty, abs=1e-9)
+        assert all(len(v) == len(r.snr_steps) for v in r.information_xt + r.information_ty)
 
 
 def test_built_in_networks_have_the_documented_shape(tab, img) -> None:

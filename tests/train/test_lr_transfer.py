@@ -14,7 +14,6 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-import torch
 
 from depthplan.config import DataConfig
 from depthplan.train.datasets import load_dataset
@@ -23,12 +22,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[2] / "benchmarks"))
 from lr_transfer import decades, tuned_rates  # noqa: E402
 
 
-@pytest.fixture(autouse=True)
-def one_thread():
-    before = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(before)
+pytestmark = pytest.mark.usefixtures("one_thread")     # tests/train/conftest.py
 
 
 def test_depth_scaled_branches_move_the_tuned_rate_much_less_over_depth() -> None:
