@@ -14,7 +14,7 @@ from ..config import ModelConfig, ProbeConfig, TrainConfig
 from ..records import CellSpec
 from .convergence import Criterion, verdict
 from .datasets import Dataset
-from .loop import BatchStream
+from .batches import BatchStream
 from .families import build_network, network_input_shape
 from .probes import probe_grids
 
