@@ -2,9 +2,11 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from functools import cached_property
 from pathlib import Path
 from typing import Any
 
+from ..fit_record import FitResult
 from ..fitting.inputs import runs_of_group
 from ..records import RunResult
 
@@ -25,6 +27,11 @@ class ReportInputs:
     config_text: str = ""
     tuning: list[dict[str, Any]] = field(default_factory=list)
     rounds: list[dict[str, Any]] = field(default_factory=list)
+
+    @cached_property
+    def result(self) -> FitResult:
+        """The fit as a typed record (`fit` stays the dict: number references name its paths)."""
+        return FitResult.from_dict(self.fit)
 
     @property
     def primary_runs(self) -> list[RunResult]:
