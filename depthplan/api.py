@@ -51,7 +51,7 @@ class FitResult(_FitRecord):
 
         if ax is None:
             ax = new_figure()[1][0]
-        plot_scaling(self.to_dict(), [], ax)
+        plot_scaling(self, [], ax)
         return ax
 
     def _repr_html_(self) -> str:

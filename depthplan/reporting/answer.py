@@ -14,6 +14,7 @@ from typing import Any
 
 import numpy as np
 
+from ..fit_record import FitGroup, given
 from ..fitting.cost import cost_basis_of, cost_label, network_words
 from ..fitting.planning import total_cost_curve
 from ..fitting.rates import TUNE_KEY, rate_effect_of, rate_effect_words
@@ -266,7 +267,7 @@ def _what_was_swept(inp: ReportInputs) -> str:
     per = f"{seeds[0]}" if len(seeds) == 1 else f"{seeds[0]} to {seeds[-1]}"
     n_all = len([r for r in inp.runs if r.lr_mode != "tuning"])
     runs_words = f"{fit['n_runs']} runs" + (
-        f" with the {F.group_label(fit['group'])} ({n_all} in all)" if n_all > fit["n_runs"] else "")
+        f" with the {F.group_label(inp.result.group)} ({n_all} in all)" if n_all > fit["n_runs"] else "")
     if inp.kind == "table":
         return (f"**What was measured.** {fit['n_runs']} rows of the measurements table "
                 f"`{inp.path.name}` at depths {depths}, {per} runs per depth. The table does not say how "
@@ -310,22 +311,21 @@ def _caution(inp: ReportInputs, w: Words) -> str:
                 "the recommended depth and a depth either side of it at full scale for a short "
                 "while and check that their order holds.")
     lo, hi = w.num("depths_swept.0", "d"), w.num("depths_swept.-1", "d")
-    far = F.extrapolated_depths(fit)
+    far = F.extrapolated_depths(inp.result)
     if far:
         text += (f" Figures marked {EXTRAPOLATED} lie outside the swept depths {lo} to {hi} and rest "
                  f"on the fitted law alone (here K = {', '.join(map(str, far))}).")
     else:
         text += f" No figure in this report lies outside the swept depths {lo} to {hi}."
-    groups = F.fitted_groups(fit)
-    if len(groups) == 1 and groups[0]["group"].get("lr_mode") == "fixed" \
-            and groups[0]["group"].get("learning_rate") is not None:
+    groups = F.fitted_groups(inp.result)
+    if len(groups) == 1 and groups[0].group.lr_mode == "fixed" and given(groups[0].group.learning_rate):
         text += _single_rate_words(groups[0])
     return text
 
 
-def _single_rate_words(group: dict[str, Any]) -> str:
+def _single_rate_words(group: FitGroup) -> str:
     """The caution of a sweep with one fixed rate, with the measured direction of T·lr·K."""
-    effect = group.get("rate_effect") or rate_effect_of(group)
+    effect = group.rate_effect or rate_effect_of(group.to_dict())
     trend = f" Here, {rate_effect_words(effect)}." if effect else ""
     return (" One learning rate served every depth, and at one rate a deeper net takes effectively "
             "larger steps, so the slope includes the rate effect and part of the gain credited to "
@@ -351,7 +351,7 @@ def answer_blocks(inp: ReportInputs, w: Words) -> list[Block]:
     if flat:
         blocks.append(("p", flat))
     if fit.get("lr_interaction"):
-        blocks.append(("p", f"These figures are for the {F.group_label(fit['group'])}; the sweep "
+        blocks.append(("p", f"These figures are for the {F.group_label(inp.result.group)}; the sweep "
                             "holds other learning-rate groups, compared further down."))
     blocks += [("p", _how_sure(fit, w)), ("p", _what_was_swept(inp)), ("p", _caution(inp, w), "caution")]
     return blocks

@@ -18,6 +18,7 @@ from matplotlib.figure import Figure
 from ..fitting.diffusion import NO_DROP_DB
 from ..fitting.cost import cost_basis_of, cost_per_update
 from ..fitting.planning import total_cost_curve
+from ..fit_record import FitResult
 from ..records import RunResult
 from .figures import (
     BLUE,
@@ -337,19 +338,18 @@ def plot_information_plane(runs: Sequence[RunResult], ax: Axes, *, depth: int) -
 
 # ---------------------------------------------------------------- learning rates
 
-def plot_rate_product(fit: dict[str, Any], runs: Sequence[RunResult], ax: Axes) -> list[Artist]:
+def plot_rate_product(fit: FitResult, runs: Sequence[RunResult], ax: Axes) -> list[Artist]:
     """Median T·lr·K per depth for each fixed-rate group: flat where depth acts as a rate multiplier."""
     out: list[Artist] = []
-    groups = [g for g in fitted_groups(fit) if g["group"].get("lr_mode") == "fixed"
-              and g["group"].get("learning_rate")]
+    groups = [g for g in fitted_groups(fit) if g.group.lr_mode == "fixed" and g.group.learning_rate]
     for i, g in enumerate(groups):
         colour, marker, line = GROUP_STYLES[i % len(GROUP_STYLES)]
-        lr = g["group"]["learning_rate"]
-        rows = [r for r in g["per_depth"] if r["median"] is not None]
-        out += ax.plot([r["depth"] for r in rows], [r["median"] * lr * r["depth"] for r in rows],
+        lr = g.group.learning_rate
+        rows = [r for r in g.per_depth if r.median is not None]
+        out += ax.plot([r.depth for r in rows], [r.median * lr * r.depth for r in rows],
                        color=colour, marker=marker, ls=line, lw=1.3, ms=5,
-                       label=group_label(g["group"]))
-    depth_panel(ax, sorted({k for g in groups for k in g["depths_swept"]}), "median T × lr × K",
+                       label=group_label(g.group))
+    depth_panel(ax, sorted({k for g in groups for k in g.depths_swept}), "median T × lr × K",
                 "flat where depth multiplies the rate")
     return out
 

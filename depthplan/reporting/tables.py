@@ -19,6 +19,7 @@ from typing import Any
 
 
 from .. import __version__
+from ..fit_record import ABSENT, FitGroup, given
 from . import figures as F
 from ..fitting.cost import cost_basis_of, cost_per_update
 from ..fitting.rates import rate_effect_of, rate_effect_words
@@ -79,7 +80,7 @@ def fit_table_blocks(inp: ReportInputs, w: Words) -> list[Block]:
     rows.append(["depth to plan for", w.num("planning.recommended_depth", "d")
                  + badge(plan.get("recommended_extrapolated")), "", plan.get("recommended_basis") or ""])
     return [("h", 3, "The fit", "fit-table"),
-            ("p", f"Fitted on the {F.group_label(fit['group'])}; the planning figures use the "
+            ("p", f"Fitted on the {F.group_label(inp.result.group)}; the planning figures use the "
                   f"{MODEL_LABELS.get(plan.get('model') or 'power_law', plan.get('model'))}"
                   + (" (chosen by AICc among the candidate models)" if fit.get("models") else "")
                   + ". Intervals are 95 %.", "small"),
@@ -155,7 +156,7 @@ def depth_table_blocks(inp: ReportInputs, w: Words) -> list[Block]:
               "validation accuracy: median (spread over seeds)", "late displacement exponent",
               "transition step", "SNR drop (dB)"]
     keep = [j for j in range(len(header)) if j < 4 or any(r[j] != "–" for r in rows)]
-    return [("p", f"For the {F.group_label(fit['group'])}. Medians and quartiles of T rank censored "
+    return [("p", f"For the {F.group_label(inp.result.group)}. Medians and quartiles of T rank censored "
                   "runs last, so a median is given only while fewer than half of a depth's runs are "
                   "censored (a quartile: a quarter); otherwise T is more than the budget shown. "
                   "MFLOP per update is the analytic count of the network as built (forward and "
@@ -168,9 +169,9 @@ def depth_table_blocks(inp: ReportInputs, w: Words) -> list[Block]:
 
 # ---------------------------------------------------------------- learning rates, tuning, rounds
 
-def _rate_product_words(g: dict[str, Any]) -> str:
+def _rate_product_words(g: FitGroup) -> str:
     """How T·lr·K trends over the depths of a fixed-rate group's law, and what that direction means."""
-    effect = g.get("rate_effect") or rate_effect_of(g)
+    effect = g.rate_effect or rate_effect_of(g.to_dict())
     if not effect:
         return ""
     text = rate_effect_words(effect)
@@ -179,26 +180,26 @@ def _rate_product_words(g: dict[str, Any]) -> str:
 
 def rate_blocks(inp: ReportInputs, w: Words) -> list[Block]:
     """Rate groups side by side, and the effective-rate effect in words."""
-    fit = inp.fit
-    entries = fit.get("by_learning_rate") or []
+    fit = inp.result
+    entries = fit.by_learning_rate or []
     rows = []
     for i, g in enumerate(entries):
-        gw = Words(fit, f"by_learning_rate.{i}.")
-        label = F.group_label(g["group"])
-        if "power_law" not in g:
-            rows.append([label, gw.num("group.n_runs", "d"), f"not fitted: {g.get('skipped', '')}",
+        gw = Words(inp.fit, f"by_learning_rate.{i}.")
+        label = F.group_label(g.group)
+        if g.power_law is ABSENT:
+            rows.append([label, gw.num("group.n_runs", "d"), f"not fitted: {g.extra.get('skipped', '')}",
                          "", "", "", ""])
             continue
         rows.append([label, gw.num("group.n_runs", "d"), gw.num("power_law.slope"),
                      gw.interval("power_law.slope_ci"),
-                     gw.num("power_law.alpha") if g["power_law"].get("alpha") is not None else "–",
-                     g["reversal"]["status"].replace("_", " ") + (
-                         f" at {gw.num('reversal.depth', '.1f')}" if g["reversal"]["depth"] else ""),
+                     gw.num("power_law.alpha") if given(g.power_law.alpha) else "–",
+                     g.reversal.status.replace("_", " ") + (
+                         f" at {gw.num('reversal.depth', '.1f')}" if g.reversal.depth else ""),
                      gw.num("planning.recommended_depth", "d")
-                     + badge(g["planning"].get("recommended_extrapolated"))])
+                     + badge(g.planning.recommended_extrapolated)])
     blocks: list[Block] = [
         ("p", f"The sweep holds {len(entries)} learning-rate groups, each fitted on its own; the "
-              f"answer at the top is for the {F.group_label(fit['group'])}."),
+              f"answer at the top is for the {F.group_label(fit.group)}."),
         ("table", ["group", "runs", "slope s", "95 % interval", "α", "reversal", "depth to plan for"],
          rows, "numbers")]
     words = ["**The effective-rate effect.** With one learning rate for every depth, depth partly "
@@ -206,19 +207,19 @@ def rate_blocks(inp: ReportInputs, w: Words) -> list[Block]:
              "at the same rate. If depth did nothing else, T·lr·K would stay constant across K; "
              "whether it falls, stays level or rises says how much more (or less) depth does, and a "
              "fixed-rate slope measures the rate as well as the depth."]
-    fixed = [g for g in F.fitted_groups(fit) if g["group"].get("lr_mode") == "fixed"]
+    fixed = [g for g in F.fitted_groups(fit) if g.group.lr_mode == "fixed"]
     words += [s for s in (_rate_product_words(g) for g in fixed) if s]
-    tuned = [i for i, g in enumerate(entries) if g["group"].get("lr_mode") == "tuned" and "power_law" in g]
-    fixed_at = [i for i, g in enumerate(entries) if g["group"].get("lr_mode") == "fixed" and "power_law" in g]
+    tuned = [i for i, g in enumerate(entries) if g.group.lr_mode == "tuned" and g.power_law is not ABSENT]
+    fixed_at = [i for i, g in enumerate(entries) if g.group.lr_mode == "fixed" and g.power_law is not ABSENT]
     if tuned and fixed_at:
         against = ", ".join(f"{w.num(f'by_learning_rate.{i}.power_law.slope')} at the "
-                            f"{F.group_label(entries[i]['group'])}" for i in fixed_at)
+                            f"{F.group_label(entries[i].group)}" for i in fixed_at)
         words.append(f"With the rate tuned per depth the slope is "
                      f"{w.num(f'by_learning_rate.{tuned[0]}.power_law.slope')}, against {against}: "
                      "the difference is gain that a fixed rate credits to depth but a rate chosen "
                      "for each depth gives anyway; the answer at the top uses the tuned rate.")
-    inter = fit.get("lr_interaction") or {}
-    if inter.get("lr_exponent") is not None:
+    inter = fit.lr_interaction
+    if inter and given(inter.lr_exponent):
         words.append(f"Across the fixed rates T scales as lr^{{{w.num('lr_interaction.lr_exponent')}}} "
                      "(an exponent near −1 together with s near −1 is a constant T·lr·K).")
     words.append("Plan with the slope of the rate policy the big run will use: if its rate will be "

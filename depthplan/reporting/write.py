@@ -26,6 +26,7 @@ from pathlib import Path
 from typing import Any, Sequence
 
 from ..errors import DataError, DepthplanError
+from ..fit_record import FitResult, given
 from ..fitting.assemble import SCHEMA, fit_path
 from ..fitting.inputs import load_runs, read_sweep_info
 from ..records import write_text_atomic
@@ -161,7 +162,7 @@ def _dynamics_depth(inp: ReportInputs) -> int | None:
     probed = sorted({r.depth for r in inp.primary_runs if r.probe_steps and r.displacement})
     if not probed:
         return None
-    target = inp.fit["planning"].get("recommended_depth") or probed[-1]
+    target = inp.result.planning.recommended_depth or probed[-1]
     return min(probed, key=lambda k: (abs(math.log(k / target)), -k))
 
 
@@ -173,7 +174,7 @@ _Drawn = tuple[Any, str, str, str, str]   # (Figure, name, title, caption, alt t
 
 
 def _scaling_figure(inp: ReportInputs) -> _Drawn:
-    fit = inp.fit
+    fit = inp.result
     fig, (ax,) = F.new_figure(7.2, 5.4)
     F.plot_scaling(fit, inp.runs, ax)
     F.shared_legend(fig, [ax], ncol=2)
@@ -193,22 +194,22 @@ def _scaling_figure(inp: ReportInputs) -> _Drawn:
 
 
 def _rates_figure(inp: ReportInputs) -> _Drawn | None:
-    groups = F.fitted_groups(inp.fit)
+    groups = F.fitted_groups(inp.result)
     if len(groups) < 2:
         return None
-    fixed = [g for g in groups if g["group"].get("lr_mode") == "fixed"]
+    fixed = [g for g in groups if g.group.lr_mode == "fixed"]
     n = len(groups) + bool(fixed)
     n_cols = 2 if n > 2 else n
     n_rows = math.ceil(n / n_cols)
     fig, axes = F.new_figure(7.4, 3.2 * n_rows + 0.8, n_cols, n_rows)
     for ax, g in zip(axes, groups):
         F.plot_scaling(g, inp.runs, ax, groups=[g], numbers_in_legend=False)
-        pl = g["power_law"]
-        ax.set_title(f"{F.group_label(g['group'])}\ns = {pl['slope']:.2f}"
-                     + (f", α = {pl['alpha']:.2f}" if pl.get("alpha") is not None else "")
-                     + (f", K* = {g['reversal']['depth']:.1f}" if g["reversal"]["depth"] else ""))
+        pl = g.power_law
+        ax.set_title(f"{F.group_label(g.group)}\ns = {pl.slope:.2f}"
+                     + (f", α = {pl.alpha:.2f}" if given(pl.alpha) else "")
+                     + (f", K* = {g.reversal.depth:.1f}" if g.reversal.depth else ""))
     if fixed:
-        TF.plot_rate_product(inp.fit, inp.runs, axes[n - 1])
+        TF.plot_rate_product(inp.result, inp.runs, axes[n - 1])
     for ax in axes[n:]:
         ax.set_visible(False)
     F.shared_legend(fig, axes[:n])
@@ -228,12 +229,12 @@ def _cost_figure(inp: ReportInputs) -> _Drawn | None:
     TF.plot_total_cost(inp.fit, inp.primary_runs, axes[1])
     F.shared_legend(fig, axes)
     return (fig, "cost", "Cost per depth",
-            _cost_caption(inp.fit),
+            _cost_caption(inp.result),
             "Seconds per update and total compute to convergence against depth.")
 
 
-def _cost_caption(fit: dict[str, Any]) -> str:
-    if fit["planning"].get("cost_basis") == "flops":
+def _cost_caption(fit: FitResult) -> str:
+    if fit.planning.cost_basis == "flops":
         return ("Left: measured wall-clock milliseconds per SGD update for each run, on this sweep's "
                 "machine (shown, not used: it includes this machine's fixed overhead per update). "
                 "Right: compute to converge for each run (updates × the analytic FLOP count of one "
@@ -295,7 +296,7 @@ def _depth_dynamics_figure(inp: ReportInputs) -> _Drawn | None:
             "over the last half of each run (steps T/2 to T; after the transition in files written "
             "before that measure existed), against the guides 1 (drift) and 1/2 (diffusion) and "
             "α from the depth law with its 95 % interval. "
-            + (inp.fit.get("diffusion") or {}).get("no_drop_note", ""),
+            + ((inp.result.diffusion.no_drop_note or "") if inp.result.diffusion else ""),
             "SNR drop and late displacement exponent against the number of hidden layers.")
 
 
@@ -390,7 +391,7 @@ def build_blocks(inp: ReportInputs, figs: list[FigureFile]) -> list[Block]:
     if transfer:
         section("From proxies to the target", "transfer", "transfer")
         blocks += transfer
-    if "rates" in by_name or inp.fit.get("lr_interaction"):
+    if "rates" in by_name or inp.result.lr_interaction:
         section("Learning rate and depth", "rates", "rates")
         blocks += rate_blocks(inp, w)
     if inp.tuning:
@@ -410,7 +411,7 @@ def build_blocks(inp: ReportInputs, figs: list[FigureFile]) -> list[Block]:
 
 
 def _title(inp: ReportInputs) -> str:
-    name = inp.info.get("name") or inp.fit.get("input", {}).get("sweep_name") or inp.path.stem
+    name = inp.info.get("name") or (inp.result.input and inp.result.input.sweep_name) or inp.path.stem
     return f"Depth plan: {name}"
 
 
