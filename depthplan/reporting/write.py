@@ -225,8 +225,8 @@ def _cost_figure(inp: ReportInputs) -> _Drawn | None:
     if not TF.has_timings(inp.primary_runs):
         return None
     fig, axes = F.new_figure(7.6, 4.4, 2)
-    TF.plot_seconds_per_update(inp.fit, inp.primary_runs, axes[0])
-    TF.plot_total_cost(inp.fit, inp.primary_runs, axes[1])
+    TF.plot_seconds_per_update(inp.result, inp.primary_runs, axes[0])
+    TF.plot_total_cost(inp.result, inp.primary_runs, axes[1])
     F.shared_legend(fig, axes)
     return (fig, "cost", "Cost per depth",
             _cost_caption(inp.result),
@@ -264,8 +264,8 @@ def _dynamics_figure(inp: ReportInputs) -> _Drawn | None:
         return None
     main = inp.primary_runs
     fig, axes = F.new_figure(8.6, 4.2, 2)
-    TF.plot_displacement(inp.fit, main, axes[0], depth=depth)
-    TF.plot_snr(inp.fit, main, axes[1], depth=depth)
+    TF.plot_displacement(inp.result, main, axes[0], depth=depth)
+    TF.plot_snr(inp.result, main, axes[1], depth=depth)
     TF.layer_colourbar(fig, axes, min(len(r.displacement) for r in main
                                       if r.depth == depth and r.displacement))
     F.shared_legend(fig, axes)
@@ -281,11 +281,11 @@ def _dynamics_figure(inp: ReportInputs) -> _Drawn | None:
 
 
 def _depth_dynamics_figure(inp: ReportInputs) -> _Drawn | None:
-    if not TF.has_depth_dynamics(inp.fit):
+    if not TF.has_depth_dynamics(inp.result):
         return None
     fig, axes = F.new_figure(8.6, 4.0, 2)
-    TF.plot_snr_drop_by_depth(inp.fit, axes[0])
-    TF.plot_late_exponent_by_depth(inp.fit, axes[1])
+    TF.plot_snr_drop_by_depth(inp.result, axes[0])
+    TF.plot_late_exponent_by_depth(inp.result, axes[1])
     F.shared_legend(fig, axes)
     return (fig, "dynamics-by-depth", "Training dynamics against depth",
             "Per depth, the median over layers and seeds of the probe measures, with bars over the "
