@@ -336,11 +336,11 @@ def _tuning_figure(inp: ReportInputs) -> _Drawn | None:
 
 
 def _transfer_figure(inp: ReportInputs) -> _Drawn | None:
-    if not XF.has_transfer_figure(inp.fit):
+    if not XF.has_transfer_figure(inp.result):
         return None
     fig, axes = F.new_figure(8.6, 4.3, 2)
     for ax, quantity in zip(axes, ("reversal_depth", "slope")):
-        XF.plot_transfer_panel(inp.fit, ax, quantity)
+        XF.plot_transfer_panel(inp.result, ax, quantity)
         if ax.get_legend() is not None:
             ax.get_legend().remove()
     F.shared_legend(fig, axes, ncol=2)
