@@ -146,13 +146,16 @@ def read_inputs(path: Path, fit_file: Path, *, n_boot: int = 400) -> ReportInput
     """Load the fit (refitting when needed), the runs and the folder's side files."""
     path = Path(path)
     fit, note = ensure_fit(path, fit_file, n_boot=n_boot)
-    runs = headline_runs(fit, load_runs(path))      # with proxy sizes: the size the headline describes
+    runs = load_runs(path)
     if not path.is_dir():
-        return ReportInputs(path, "table", fit, note, runs)
-    info = read_sweep_info(path)
-    config, text = _read_config(path)
-    return ReportInputs(path, "results_folder", fit, note, runs, info, config, text,
-                        _read_tuning(path / "tuning.csv"), _read_rounds(info))
+        inp = ReportInputs(path, "table", fit, note, runs)
+    else:
+        info = read_sweep_info(path)
+        config, text = _read_config(path)
+        inp = ReportInputs(path, "results_folder", fit, note, runs, info, config, text,
+                           _read_tuning(path / "tuning.csv"), _read_rounds(info))
+    inp.runs = headline_runs(inp.result, inp.runs)   # with proxy sizes: the size the headline describes
+    return inp
 
 
 # ---------------------------------------------------------------- figures
