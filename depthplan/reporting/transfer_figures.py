@@ -7,7 +7,7 @@ Everything right of the largest proxy used in the fit is extrapolation and lies 
 """
 from __future__ import annotations
 
-from typing import Any, Sequence
+from typing import Sequence
 
 from matplotlib.artist import Artist
 from matplotlib.axes import Axes
