@@ -34,7 +34,7 @@ def save_percent(w: Words) -> str:
 
 # ---------------------------------------------------------------- the answer
 
-def _cost_model(fig: PlannedDepth) -> dict[str, Any] | None:
+def planned_cost_model(fig: PlannedDepth) -> dict[str, Any] | None:
     """A planned depth's cost model, None when it has none."""
     return fig.cost_model if given(fig.cost_model) else None
 
@@ -55,7 +55,7 @@ def _why(fit: FitGroup, w: Words) -> str:
         return "It is both the compute-optimal depth and the last depth worth adding." + past
     if rec == opt:
         return ("It is the compute-optimal depth: there the fitted number of updates times the "
-                f"cost of one update ({cost_label(_cost_model(plan.compute_optimal_depth))}) "
+                f"cost of one update ({cost_label(planned_cost_model(plan.compute_optimal_depth))}) "
                 "is lowest"
                 + (f", and it comes before the last depth worth adding (K = "
                    f"{w.num('planning.last_depth_worth_adding.depth', 'd')})." if worth else ".") + past)
@@ -99,7 +99,7 @@ def _fewest_updates(fit: FitGroup, w: Words) -> str:
 def _compute_optimal(fit: FitGroup, w: Words) -> str:
     opt = fit.planning.compute_optimal_depth
     head = "**Least compute (compute-optimal):** "
-    if _cost_model(opt) is None:
+    if planned_cost_model(opt) is None:
         return head + f"not given: {opt.note or 'no cost per update is known'}."
     p = "planning.compute_optimal_depth."
     cost = _cost_words(opt.cost_model, w, p + "cost_model.")
