@@ -14,7 +14,7 @@ from typing import Any
 
 import numpy as np
 
-from ..fit_record import FitGroup, PlannedDepth, given
+from ..fit_record import Diffusion, FitGroup, PlannedDepth, given
 from ..fitting.cost import cost_basis_of, cost_label, network_words
 from ..fitting.planning import total_cost_curve
 from ..fitting.rates import TUNE_KEY, rate_effect_of, rate_effect_words
@@ -377,24 +377,24 @@ def _accuracy_blocks(fit: FitGroup, w: Words) -> list[Block]:
                   "per-depth table).", "answer warning")]
 
 
-def dynamics_words(w: Words) -> str:
+def dynamics_words(fit: FitGroup, w: Words) -> str:
     """The probe cross-check in a few sentences (or '' without probes)."""
-    d = w.get("diffusion")
-    if not d or (d.get("late_exponent_median") is None and not d.get("late_window")):
+    d = fit.diffusion
+    if not d or not d.to_dict() or (not given(d.late_exponent_median) and not d.late_window):
         return ""
-    text = _late_window_words(w) if d.get("late_window") else _old_late_words(w)
+    text = _late_window_words(d, w) if d.late_window else _old_late_words(d, w)
     parts = (("snr_drop_db_median", ".1f", " The gradient SNR falls by a median {} dB"),
              ("transition_step_median", ".0f", ", around step {}"))
-    snr = "".join(t.format(w.num(f"diffusion.{key}", fmt)) for key, fmt, t in parts if d.get(key) is not None)
-    return text + (snr + "." if snr else "") + _depth_drop_words(w)
+    snr = "".join(t.format(w.num(f"diffusion.{key}", fmt)) for key, fmt, t in parts
+                  if given(getattr(d, key)))
+    return text + (snr + "." if snr else "") + _depth_drop_words(d, w)
 
 
-def _old_late_words(w: Words) -> str:
+def _old_late_words(d: Diffusion, w: Words) -> str:
     """The sentence of files written before the late window existed: two numbers side by side."""
-    d = w.get("diffusion")
     text = ("Over all probed depths and layers, the late-phase growth exponent of the displacement "
             f"has median {w.num('diffusion.late_exponent_median', '.2f')}")
-    if d.get("alpha") is not None:
+    if given(d.alpha):
         text += f" (α from the depth law: {w.num('diffusion.alpha', '.2f')})"
     return text + "."
 
@@ -409,10 +409,10 @@ _VERDICT_SENTENCES = {
 }
 
 
-def _late_window_words(w: Words) -> str:
+def _late_window_words(d: Diffusion, w: Words) -> str:
     """The late-window exponent with its interval, α with its interval, and the verdict."""
-    late = w.get("diffusion.late_window")
-    if late.get("exponent") is None:
+    late = d.late_window
+    if not given(late.exponent):
         exponent = ("The growth exponent of the weight displacement over the last half of each "
                     "run (steps T/2 to T) is not measured: too few probes fall there.")
     else:
@@ -422,21 +422,20 @@ def _late_window_words(w: Words) -> str:
                     "of least-squares slopes on log-log axes, its interval from a bootstrap over "
                     "seeds that also draws each slope within its own t-interval.")
     alpha = ""
-    if late.get("alpha") is not None:
+    if given(late.alpha):
         alpha = (f" α from the depth law is {w.num('diffusion.late_window.alpha', '.2f')}"
                  f"{w.ci('diffusion.late_window.alpha_ci')}.")
-    return f"{exponent}{alpha} {_VERDICT_SENTENCES.get(late.get('verdict'), '')}"
+    return f"{exponent}{alpha} {_VERDICT_SENTENCES.get(late.verdict, '')}"
 
 
-def _depth_drop_words(w: Words) -> str:
+def _depth_drop_words(d: Diffusion, w: Words) -> str:
     """' Per depth, the drop is a dB at K = 1 and b dB at K = 24. <no-drop note>' (or '')."""
-    d = w.get("diffusion") or {}
-    rows = [(i, r) for i, r in enumerate(d.get("by_depth") or []) if r.get("snr_drop_db") is not None]
+    rows = [(i, r) for i, r in enumerate(d.by_depth or []) if given(r.snr_drop_db)]
     text = ""
     if len(rows) >= 2:
         (i, first), (j, last) = rows[0], rows[-1]
         text = (f" Per depth, the median SNR drop is {w.num(f'diffusion.by_depth.{i}.snr_drop_db', '.1f')}"
-                f" dB at K = {first['depth']} and {w.num(f'diffusion.by_depth.{j}.snr_drop_db', '.1f')}"
-                f" dB at K = {last['depth']}.")
-    note = d.get("no_drop_note")
+                f" dB at K = {first.depth} and {w.num(f'diffusion.by_depth.{j}.snr_drop_db', '.1f')}"
+                f" dB at K = {last.depth}.")
+    note = d.no_drop_note
     return text + (f" {note}" if note else "")

@@ -279,7 +279,7 @@ def _dynamics_figure(inp: ReportInputs) -> _Drawn | None:
             "the square-root law of a random walk). Right: gradient signal-to-noise ratio in "
             "decibels, 10·log10((‖ḡ‖² − S/n)/S) over n minibatch gradients (ḡ their mean, S the "
             "unbiased estimate of the noise's total variance); a gap is a step below the floor of "
-            "the window. " + dynamics_words(Words(inp.fit)),
+            "the window. " + dynamics_words(inp.result, Words(inp.fit)),
             "Weight displacement and gradient SNR per layer against updates.")
 
 
