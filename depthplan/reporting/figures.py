@@ -25,8 +25,8 @@ from matplotlib.figure import Figure
 from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter, NullLocator
 
 from ..fit_record import FitGroup, FitResult, GroupLabel, given
-from ..fitting.inputs import runs_of_group
 from ..records import RunResult, write_bytes_atomic
+from .inputs import group_runs
 
 # Okabe-Ito: black, orange, sky blue, bluish green, yellow, blue, vermillion, reddish purple
 OKABE_ITO = ("#000000", "#E69F00", "#56B4E9", "#009E73", "#F0E442", "#0072B2", "#D55E00", "#CC79A7")
@@ -87,11 +87,6 @@ def group_label(group: GroupLabel | None) -> str:
 def fitted_groups(fit: FitGroup) -> list[FitGroup]:
     """The rate groups that were fitted (the top level alone when there is one group)."""
     return fit.groups if isinstance(fit, FitResult) else [fit]
-
-
-def group_runs(g: FitGroup, runs: Sequence[RunResult]) -> list[RunResult]:
-    """The runs the rate group `g` describes (all of them when it names none)."""
-    return runs_of_group(g.group.to_dict() if g.group else None, runs)
 
 
 def _law_curve(g: FitGroup, depths: Sequence[float]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
