@@ -57,7 +57,7 @@ class FitResult(_FitRecord):
     def _repr_html_(self) -> str:
         from .reporting.notebook import fit_html
 
-        return fit_html(self.to_dict())
+        return fit_html(self)
 
 
 def _pandas(why: str) -> Any:
