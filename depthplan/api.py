@@ -51,13 +51,13 @@ class FitResult(_FitRecord):
 
         if ax is None:
             ax = new_figure()[1][0]
-        plot_scaling(self.to_dict(), [], ax)
+        plot_scaling(self, [], ax)
         return ax
 
     def _repr_html_(self) -> str:
         from .reporting.notebook import fit_html
 
-        return fit_html(self.to_dict())
+        return fit_html(self)
 
 
 def _pandas(why: str) -> Any:

@@ -17,7 +17,7 @@ from typing import Any, ClassVar, Mapping, TypeVar
 
 from .records import ReversalStatus
 
-__all__ = ["ABSENT", "Record", "FitResult", "FitGroup", "PowerLaw", "Reversal", "Planning",
+__all__ = ["ABSENT", "given", "Record", "FitResult", "FitGroup", "PowerLaw", "Reversal", "Planning",
            "PlannedDepth", "Diffusion", "DiffusionLayer", "DiffusionDepth", "LateWindow", "Curve", "DepthRow", "Bootstrap",
            "GroupLabel", "FitInput", "LrInteraction", "Transfer", "TransferTarget", "LackOfFit", "ModelFit",
            "Models", "StuckRun", "TransferVerify"]
@@ -41,6 +41,12 @@ class _Absent:
 
 
 ABSENT: Any = _Absent()
+
+
+def given(v: Any) -> bool:
+    """True when a field holds a value: neither null (None) nor left out of the file (ABSENT)."""
+    return v is not None and v is not ABSENT
+
 R = TypeVar("R", bound="Record")
 
 

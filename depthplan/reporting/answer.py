@@ -14,6 +14,7 @@ from typing import Any
 
 import numpy as np
 
+from ..fit_record import Diffusion, FitGroup, PlannedDepth, given
 from ..fitting.cost import cost_basis_of, cost_label, network_words
 from ..fitting.planning import total_cost_curve
 from ..fitting.rates import TUNE_KEY, rate_effect_of, rate_effect_words
@@ -33,23 +34,28 @@ def save_percent(w: Words) -> str:
 
 # ---------------------------------------------------------------- the answer
 
-def _why(fit: dict[str, Any], w: Words) -> str:
-    plan, rev = fit["planning"], fit["reversal"]
-    rec = plan["recommended_depth"]
-    opt, worth = plan["compute_optimal_depth"]["depth"], plan["last_depth_worth_adding"]["depth"]
-    if rec is None:
+def planned_cost_model(fig: PlannedDepth) -> dict[str, Any] | None:
+    """A planned depth's cost model, None when it has none."""
+    return fig.cost_model if given(fig.cost_model) else None
+
+
+def _why(fit: FitGroup, w: Words) -> str:
+    plan, rev = fit.planning, fit.reversal
+    rec = plan.recommended_depth
+    opt, worth = plan.compute_optimal_depth.depth, plan.last_depth_worth_adding.depth
+    if not given(rec):
         return "No depth could be derived from these runs; see the warnings."
-    if not fit["depth_gain"]:
+    if not fit.depth_gain:
         return (f"Depth gives no gain over the swept depths: the fitted slope s = "
                 f"{w.num('power_law.slope')} is not clearly below zero, so added layers do not cut "
                 "the number of updates, and the shallowest depth swept is the cheapest choice.")
     past = (f" Past the reversal depth (K* ≈ {w.num('reversal.depth', '.1f')}) each added layer "
-            "costs more updates, not fewer." if rev["status"] == "observed" else "")
+            "costs more updates, not fewer." if rev.status == "observed" else "")
     if rec == opt and rec == worth:
         return "It is both the compute-optimal depth and the last depth worth adding." + past
     if rec == opt:
         return ("It is the compute-optimal depth: there the fitted number of updates times the "
-                f"cost of one update ({cost_label(plan['compute_optimal_depth'].get('cost_model'))}) "
+                f"cost of one update ({cost_label(planned_cost_model(plan.compute_optimal_depth))}) "
                 "is lowest"
                 + (f", and it comes before the last depth worth adding (K = "
                    f"{w.num('planning.last_depth_worth_adding.depth', 'd')})." if worth else ".") + past)
@@ -58,48 +64,48 @@ def _why(fit: dict[str, Any], w: Words) -> str:
                 f"{save_percent(w)} % of the updates"
                 + (f", and it comes before the compute-optimal depth (K = "
                    f"{w.num('planning.compute_optimal_depth.depth', 'd')})." if opt else ".") + past)
-    if rev.get("rise_suspected"):
+    if rev.rise_suspected:
         return ("It is the swept depth with the fewest updates: T turns up past it, and although "
                 "that rise is not established, the figures of the fitted law (which would go "
                 "deeper) are capped there.")
-    return f"It is the {plan['recommended_basis']}."
+    return f"It is the {plan.recommended_basis}."
 
 
-def _fewest_updates(fit: dict[str, Any], w: Words) -> str:
-    rev = fit["reversal"]
+def _fewest_updates(fit: FitGroup, w: Words) -> str:
+    rev = fit.reversal
     head = "**Fewest updates (iteration-optimal):** "
-    if rev["status"] == "observed":
+    if rev.status == "observed":
         text = (f"K* ≈ {w.num('reversal.depth', '.1f')}{w.ci('reversal.depth_ci', '.1f')}. Below it "
                 f"T falls as K^{{{w.num('reversal.falling_slope')}}}; past it T rises as "
                 f"K^{{{w.num('reversal.rising_slope')}}}{w.ci('reversal.rising_slope_ci')}.")
-        if rev.get("model") == "two_term" and rev.get("breakpoint") is not None:
+        if rev.model == "two_term" and given(rev.breakpoint):
             text += (f" K* is the minimum of the smooth two-term model (preferred by AICc); the broken "
                      f"stick, as a cross-check, puts its corner at K ≈ {w.num('reversal.breakpoint', '.1f')}.")
-        elif rev.get("smooth_depth") is not None:
+        elif given(rev.smooth_depth):
             text += (f" A smooth two-term model, as a cross-check, puts the minimum at K ≈ "
                      f"{w.num('reversal.smooth_depth', '.1f')}.")
         return head + text
-    if rev["status"] == "none":
+    if rev.status == "none":
         return head + "not defined: depth gives no gain here."
-    if rev.get("rise_suspected"):
+    if rev.rise_suspected:
         return head + (f"T is lowest at K = {w.num('power_law.depths_used.-1', 'd')} of the depths "
                        f"swept and turns up past it, but the rise is not established "
-                       f"({rev['note']}); add seeds and deeper depths before trusting it.")
+                       f"({rev.note}); add seeds and deeper depths before trusting it.")
     return head + (f"not inside the sweep: T still falls at the deepest depth swept (K = "
                    f"{w.num('depths_swept.-1', 'd')}), so the minimum, if there is one, lies "
                    "deeper. Sweep deeper to find it.")
 
 
-def _compute_optimal(fit: dict[str, Any], w: Words) -> str:
-    opt = fit["planning"]["compute_optimal_depth"]
+def _compute_optimal(fit: FitGroup, w: Words) -> str:
+    opt = fit.planning.compute_optimal_depth
     head = "**Least compute (compute-optimal):** "
-    if opt.get("cost_model") is None:
-        return head + f"not given: {opt.get('note') or 'no cost per update is known'}."
+    if planned_cost_model(opt) is None:
+        return head + f"not given: {opt.note or 'no cost per update is known'}."
     p = "planning.compute_optimal_depth."
-    cost = _cost_words(opt["cost_model"], w, p + "cost_model.")
-    if opt["depth"] is None:
-        return head + f"not given: {opt.get('note') or 'no minimum within the search range'} ({cost})."
-    return head + (f"K = {w.num(p + 'depth', 'd')}{w.ci(p + 'ci', 'd')}{badge(opt['extrapolated'])}, "
+    cost = _cost_words(opt.cost_model, w, p + "cost_model.")
+    if opt.depth is None:
+        return head + f"not given: {opt.note or 'no minimum within the search range'} ({cost})."
+    return head + (f"K = {w.num(p + 'depth', 'd')}{w.ci(p + 'ci', 'd')}{badge(opt.extrapolated)}, "
                    f"where the fitted updates times the cost of one update are lowest ({cost}).")
 
 
@@ -128,20 +134,20 @@ def _cost_words(cost: dict[str, Any], w: Words, p: str) -> str:
             + f"{w.num(p + 'seconds_per_layer', '.3g@1e3')} ms per layer: {where}")
 
 
-def _worth_adding(fit: dict[str, Any], w: Words) -> str:
-    fig = fit["planning"]["last_depth_worth_adding"]
+def _worth_adding(fit: FitGroup, w: Words) -> str:
+    fig = fit.planning.last_depth_worth_adding
     head = "**Last depth worth adding:** "
-    if fig["depth"] is None:
+    if fig.depth is None:
         return head + (f"not found: under the fitted law every added layer keeps saving at least "
                        f"{save_percent(w)} % of the updates over the whole search range.")
     p = "planning.last_depth_worth_adding."
-    return head + (f"K = {w.num(p + 'depth', 'd')}{w.ci(p + 'ci', 'd')}{badge(fig['extrapolated'])}: "
+    return head + (f"K = {w.num(p + 'depth', 'd')}{w.ci(p + 'ci', 'd')}{badge(fig.extrapolated)}: "
                    f"from there the next layer saves less than {save_percent(w)} % of the updates.")
 
 
-def flat_cost_range(fit: dict[str, Any]) -> tuple[int, int] | None:
+def flat_cost_range(fit: FitGroup) -> tuple[int, int] | None:
     """Whole depths around the minimum where the fitted total compute is within `_FLAT` of it."""
-    curve = total_cost_curve(fit)
+    curve = total_cost_curve(fit.to_dict())
     if curve is None or not np.isfinite(curve[1]).all():
         return None
     k, cost = curve
@@ -159,9 +165,9 @@ def flat_cost_range(fit: dict[str, Any]) -> tuple[int, int] | None:
     return int(ks[lo]), int(ks[hi])
 
 
-def _flat_words(fit: dict[str, Any]) -> str:
+def _flat_words(fit: FitGroup) -> str:
     span = flat_cost_range(fit)
-    if span is None or span[1] - span[0] < 2 or fit["planning"]["compute_optimal_depth"]["depth"] is None:
+    if span is None or span[1] - span[0] < 2 or fit.planning.compute_optimal_depth.depth is None:
         return ""
     return (f"The total compute is nearly flat near its minimum: by the fitted law it stays within "
             f"{100 * _FLAT:.0f} % of the lowest value from K = {span[0]} to K = {span[1]}, so any "
@@ -169,35 +175,35 @@ def _flat_words(fit: dict[str, Any]) -> str:
             "matters (memory, latency, the rest of the architecture).")
 
 
-def _how_sure(fit: dict[str, Any], w: Words) -> str:
-    pl = fit["power_law"]
+def _how_sure(fit: FitGroup, w: Words) -> str:
+    pl = fit.power_law
     text = (f"**How sure.** Over depths {w.num('power_law.depths_used.0', 'd')} to "
             f"{w.num('power_law.depths_used.-1', 'd')} the law T ∝ K^{{s}} fits with s = "
             f"{w.num('power_law.slope')}{w.ci('power_law.slope_ci')}, standard error "
             f"{w.num('power_law.slope_se')}")
-    if pl.get("alpha") is not None:
+    if given(pl.alpha):
         text += f", so α = 1/(1 − s) = {w.num('power_law.alpha')}{w.ci('power_law.alpha_ci')}"
     text += f"; R² = {w.num('power_law.r2')}."
-    if pl.get("alpha") is not None:
+    if given(pl.alpha):
         text += " (Free diffusion, α = 1/2, gives s = −1: doubling the depth halves the updates.)"
-    how = ("of the seeds within each depth" if fit["bootstrap"]["method"] == "seeds_within_depth"
+    how = ("of the seeds within each depth" if fit.bootstrap.method == "seeds_within_depth"
            else "of the fit's residuals, since some depth has a single run")
     text += (f" Intervals are 95 % percentile intervals from {w.num('bootstrap.n_boot', 'd')} "
              f"bootstrap resamples {how}")
-    models = fit.get("models")
+    models = fit.models
     if models:
-        ranked = sorted(models["candidates"], key=lambda c: -c["weight"])
+        ranked = sorted(models.candidates, key=lambda c: -c.weight)
         text += ("; every resample refits the candidate models and picks one again by AICc, so the "
                  "depth intervals carry the doubt about which model is right as well as the seed noise. "
-                 "Akaike weights: " + ", ".join(f"{MODEL_LABELS.get(c['model'], c['model'])} {c['weight']:.2f}"
+                 "Akaike weights: " + ", ".join(f"{MODEL_LABELS.get(c.model, c.model)} {c.weight:.2f}"
                                                  for c in ranked))
     text += "."
-    if pl.get("without_shallowest"):
+    if pl.without_shallowest:
         text += (f" Leaving out the shallowest depth gives s = "
                  f"{w.num('power_law.without_shallowest.slope')}"
                  f"{w.ci('power_law.without_shallowest.slope_ci')}.")
-    if pl.get("n_censored"):
-        one = pl["n_censored"] == 1
+    if pl.n_censored:
+        one = pl.n_censored == 1
         text += (f" {w.num('power_law.n_censored', 'd')} censored run{'' if one else 's'} "
                  f"count{'s' if one else ''} as {'a lower bound' if one else 'lower bounds'} "
                  "(a censored likelihood), not as values.")
@@ -260,15 +266,15 @@ def _rate_words(cfg: Any) -> str:
 
 
 def _what_was_swept(inp: ReportInputs) -> str:
-    fit = inp.fit
-    depths = ", ".join(str(k) for k in fit["depths_swept"])
-    seeds = sorted({row["runs"] for row in fit["per_depth"]})
+    fit = inp.result
+    depths = ", ".join(str(k) for k in fit.depths_swept)
+    seeds = sorted({row.runs for row in fit.per_depth})
     per = f"{seeds[0]}" if len(seeds) == 1 else f"{seeds[0]} to {seeds[-1]}"
     n_all = len([r for r in inp.runs if r.lr_mode != "tuning"])
-    runs_words = f"{fit['n_runs']} runs" + (
-        f" with the {F.group_label(fit['group'])} ({n_all} in all)" if n_all > fit["n_runs"] else "")
+    runs_words = f"{fit.n_runs} runs" + (
+        f" with the {F.group_label(fit.group)} ({n_all} in all)" if n_all > fit.n_runs else "")
     if inp.kind == "table":
-        return (f"**What was measured.** {fit['n_runs']} rows of the measurements table "
+        return (f"**What was measured.** {fit.n_runs} rows of the measurements table "
                 f"`{inp.path.name}` at depths {depths}, {per} runs per depth. The table does not say how "
                 "the jobs were set up, so this report cannot either.")
     cfg = inp.config
@@ -278,7 +284,7 @@ def _what_was_swept(inp: ReportInputs) -> str:
                 f"folder's config.yaml {why}, so the settings are not described).")
     opt = "SGD" if cfg.train.optimizer == "sgd" else cfg.train.optimizer.capitalize()
     return (f"**What was swept.** {runs_words} on {_dataset_words(cfg)}: depths {depths} "
-            f"({len(fit['depths_swept'])} depths), {per} seeds per depth. Each network is "
+            f"({len(fit.depths_swept)} depths), {per} seeds per depth. Each network is "
             f"{model_words(cfg.model)} trained with "
             f"{opt}, {_rate_words(cfg)}, batch {cfg.train.batch_size}, at most "
             f"{cfg.train.max_updates:,} updates; a run counts as converged at the first check (every "
@@ -286,9 +292,9 @@ def _what_was_swept(inp: ReportInputs) -> str:
 
 
 def _n_params(inp: ReportInputs) -> str:
-    rec = inp.fit["planning"].get("recommended_depth")
+    rec = inp.result.planning.recommended_depth
     sized = [r for r in inp.primary_runs if r.n_params]
-    if not sized or rec is None:
+    if not sized or not given(rec):
         return ""
     k = min({r.depth for r in sized}, key=lambda d: abs(math.log(d / rec)))
     n = statistics.median(r.n_params for r in sized if r.depth == k)
@@ -296,7 +302,6 @@ def _n_params(inp: ReportInputs) -> str:
 
 
 def _caution(inp: ReportInputs, w: Words) -> str:
-    fit = inp.fit
     if inp.kind == "table":
         text = ("**Read this as a prior, not a guarantee.** These figures come only from the jobs in "
                 "the table. If those jobs were smaller than the one being planned, they are proxies, "
@@ -310,22 +315,21 @@ def _caution(inp: ReportInputs, w: Words) -> str:
                 "the recommended depth and a depth either side of it at full scale for a short "
                 "while and check that their order holds.")
     lo, hi = w.num("depths_swept.0", "d"), w.num("depths_swept.-1", "d")
-    far = F.extrapolated_depths(fit)
+    far = F.extrapolated_depths(inp.result)
     if far:
         text += (f" Figures marked {EXTRAPOLATED} lie outside the swept depths {lo} to {hi} and rest "
                  f"on the fitted law alone (here K = {', '.join(map(str, far))}).")
     else:
         text += f" No figure in this report lies outside the swept depths {lo} to {hi}."
-    groups = F.fitted_groups(fit)
-    if len(groups) == 1 and groups[0]["group"].get("lr_mode") == "fixed" \
-            and groups[0]["group"].get("learning_rate") is not None:
+    groups = F.fitted_groups(inp.result)
+    if len(groups) == 1 and groups[0].group.lr_mode == "fixed" and given(groups[0].group.learning_rate):
         text += _single_rate_words(groups[0])
     return text
 
 
-def _single_rate_words(group: dict[str, Any]) -> str:
+def _single_rate_words(group: FitGroup) -> str:
     """The caution of a sweep with one fixed rate, with the measured direction of T·lr·K."""
-    effect = group.get("rate_effect") or rate_effect_of(group)
+    effect = group.rate_effect or rate_effect_of(group.to_dict())
     trend = f" Here, {rate_effect_words(effect)}." if effect else ""
     return (" One learning rate served every depth, and at one rate a deeper net takes effectively "
             "larger steps, so the slope includes the rate effect and part of the gain credited to "
@@ -335,35 +339,35 @@ def _single_rate_words(group: dict[str, Any]) -> str:
 
 def answer_blocks(inp: ReportInputs, w: Words) -> list[Block]:
     """The answer first: the depth to plan for, why, the three figures, how sure, what was swept."""
-    fit = inp.fit
-    plan = fit["planning"]
+    fit = inp.result
+    plan = fit.planning
     lead = (f"**Plan for {w.num('planning.recommended_depth', 'd')} hidden layers**"
-            f"{badge(plan.get('recommended_extrapolated'))}. {_why(fit, w)}")
-    if plan["recommended_depth"] is None:
+            f"{badge(plan.recommended_extrapolated)}. {_why(fit, w)}")
+    if not given(plan.recommended_depth):
         lead = _why(fit, w)
     blocks: list[Block] = [("h", 2, "The answer", "answer"), ("p", lead, "answer lead")]
     blocks += _accuracy_blocks(fit, w)     # first: a worse-generalising depth can overturn the answer
-    caveats = caveat_sentences(fit)
+    caveats = caveat_sentences(inp.fit)
     if caveats:   # said before the figures: where the data do not settle the answer, stuck runs
         blocks.append(("p", " ".join(t[0].upper() + t[1:] + "." for t in caveats), "caveats"))
     blocks.append(("ul", [_fewest_updates(fit, w), _compute_optimal(fit, w), _worth_adding(fit, w)]))
     flat = _flat_words(fit)
     if flat:
         blocks.append(("p", flat))
-    if fit.get("lr_interaction"):
-        blocks.append(("p", f"These figures are for the {F.group_label(fit['group'])}; the sweep "
+    if fit.lr_interaction:
+        blocks.append(("p", f"These figures are for the {F.group_label(fit.group)}; the sweep "
                             "holds other learning-rate groups, compared further down."))
     blocks += [("p", _how_sure(fit, w)), ("p", _what_was_swept(inp)), ("p", _caution(inp, w), "caution")]
     return blocks
 
 
-def _accuracy_blocks(fit: dict[str, Any], w: Words) -> list[Block]:
+def _accuracy_blocks(fit: FitGroup, w: Words) -> list[Block]:
     """Right under the lead: the planned depth's validation accuracy when it is clearly below the best."""
-    check = fit["planning"].get("accuracy_check") or {}
+    check = fit.planning.accuracy_check or {}        # a plain block
     if not check.get("clearly_below"):
         return []
     p = "planning.accuracy_check."
-    near = ("" if check["depth"] == fit["planning"]["recommended_depth"] else
+    near = ("" if check["depth"] == fit.planning.recommended_depth else
             f" (the swept depth nearest the planned {w.num('planning.recommended_depth', 'd')})")
     return [("p", f"**Accuracy warning.** At K = {w.num(p + 'depth', 'd')}{near} the validation accuracy "
                   f"is {w.num(p + 'accuracy', '.1f@100')} % (median over seeds), clearly below the "
@@ -373,24 +377,24 @@ def _accuracy_blocks(fit: dict[str, Any], w: Words) -> list[Block]:
                   "per-depth table).", "answer warning")]
 
 
-def dynamics_words(w: Words) -> str:
+def dynamics_words(fit: FitGroup, w: Words) -> str:
     """The probe cross-check in a few sentences (or '' without probes)."""
-    d = w.get("diffusion")
-    if not d or (d.get("late_exponent_median") is None and not d.get("late_window")):
+    d = fit.diffusion
+    if not d or not d.to_dict() or (not given(d.late_exponent_median) and not d.late_window):
         return ""
-    text = _late_window_words(w) if d.get("late_window") else _old_late_words(w)
+    text = _late_window_words(d, w) if d.late_window else _old_late_words(d, w)
     parts = (("snr_drop_db_median", ".1f", " The gradient SNR falls by a median {} dB"),
              ("transition_step_median", ".0f", ", around step {}"))
-    snr = "".join(t.format(w.num(f"diffusion.{key}", fmt)) for key, fmt, t in parts if d.get(key) is not None)
-    return text + (snr + "." if snr else "") + _depth_drop_words(w)
+    snr = "".join(t.format(w.num(f"diffusion.{key}", fmt)) for key, fmt, t in parts
+                  if given(getattr(d, key)))
+    return text + (snr + "." if snr else "") + _depth_drop_words(d, w)
 
 
-def _old_late_words(w: Words) -> str:
+def _old_late_words(d: Diffusion, w: Words) -> str:
     """The sentence of files written before the late window existed: two numbers side by side."""
-    d = w.get("diffusion")
     text = ("Over all probed depths and layers, the late-phase growth exponent of the displacement "
             f"has median {w.num('diffusion.late_exponent_median', '.2f')}")
-    if d.get("alpha") is not None:
+    if given(d.alpha):
         text += f" (α from the depth law: {w.num('diffusion.alpha', '.2f')})"
     return text + "."
 
@@ -405,10 +409,10 @@ _VERDICT_SENTENCES = {
 }
 
 
-def _late_window_words(w: Words) -> str:
+def _late_window_words(d: Diffusion, w: Words) -> str:
     """The late-window exponent with its interval, α with its interval, and the verdict."""
-    late = w.get("diffusion.late_window")
-    if late.get("exponent") is None:
+    late = d.late_window
+    if not given(late.exponent):
         exponent = ("The growth exponent of the weight displacement over the last half of each "
                     "run (steps T/2 to T) is not measured: too few probes fall there.")
     else:
@@ -418,21 +422,20 @@ def _late_window_words(w: Words) -> str:
                     "of least-squares slopes on log-log axes, its interval from a bootstrap over "
                     "seeds that also draws each slope within its own t-interval.")
     alpha = ""
-    if late.get("alpha") is not None:
+    if given(late.alpha):
         alpha = (f" α from the depth law is {w.num('diffusion.late_window.alpha', '.2f')}"
                  f"{w.ci('diffusion.late_window.alpha_ci')}.")
-    return f"{exponent}{alpha} {_VERDICT_SENTENCES.get(late.get('verdict'), '')}"
+    return f"{exponent}{alpha} {_VERDICT_SENTENCES.get(late.verdict, '')}"
 
 
-def _depth_drop_words(w: Words) -> str:
+def _depth_drop_words(d: Diffusion, w: Words) -> str:
     """' Per depth, the drop is a dB at K = 1 and b dB at K = 24. <no-drop note>' (or '')."""
-    d = w.get("diffusion") or {}
-    rows = [(i, r) for i, r in enumerate(d.get("by_depth") or []) if r.get("snr_drop_db") is not None]
+    rows = [(i, r) for i, r in enumerate(d.by_depth or []) if given(r.snr_drop_db)]
     text = ""
     if len(rows) >= 2:
         (i, first), (j, last) = rows[0], rows[-1]
         text = (f" Per depth, the median SNR drop is {w.num(f'diffusion.by_depth.{i}.snr_drop_db', '.1f')}"
-                f" dB at K = {first['depth']} and {w.num(f'diffusion.by_depth.{j}.snr_drop_db', '.1f')}"
-                f" dB at K = {last['depth']}.")
-    note = d.get("no_drop_note")
+                f" dB at K = {first.depth} and {w.num(f'diffusion.by_depth.{j}.snr_drop_db', '.1f')}"
+                f" dB at K = {last.depth}.")
+    note = d.no_drop_note
     return text + (f" {note}" if note else "")

@@ -18,6 +18,7 @@ from matplotlib.figure import Figure
 from ..fitting.diffusion import NO_DROP_DB
 from ..fitting.cost import cost_basis_of, cost_per_update
 from ..fitting.planning import total_cost_curve
+from ..fit_record import DiffusionDepth, FitGroup, FitResult, given
 from ..records import RunResult
 from .figures import (
     BLUE,
@@ -52,31 +53,32 @@ def cost_words(seconds_intercept: float, seconds_per_layer: float) -> str:
     return f"{1e3 * seconds_intercept:.3g} ms + {per_layer}" if seconds_intercept > 0 else per_layer
 
 
-def plot_seconds_per_update(fit: dict[str, Any], runs: Sequence[RunResult], ax: Axes) -> list[Artist]:
+def plot_seconds_per_update(fit: FitGroup, runs: Sequence[RunResult], ax: Axes) -> list[Artist]:
     """Measured milliseconds per update against depth, with the fitted straight cost line."""
     timed = _timed(runs)
     out = [ax.scatter([r.depth for r in timed], [1e3 * r.seconds_per_update for r in timed], s=12,
                       marker="o", facecolor=SKY_BLUE, edgecolor="none", alpha=0.6,
                       label="one run (seed)")]
-    rows = [r for r in fit["per_depth"] if r["seconds_per_update"] is not None]
-    out.append(ax.scatter([r["depth"] for r in rows], [1e3 * r["seconds_per_update"] for r in rows],
+    rows = [r for r in fit.per_depth if r.seconds_per_update is not None]
+    out.append(ax.scatter([r.depth for r in rows], [1e3 * r.seconds_per_update for r in rows],
                           s=30, marker="s", facecolor="white", edgecolor="black", zorder=4,
                           label="median per depth"))
-    cost = fit["planning"]["compute_optimal_depth"].get("cost_model")
+    cost = fit.planning.compute_optimal_depth.cost_model
     if cost and "seconds_intercept" in cost:          # the line of the seconds basis only
-        k = np.linspace(min(fit["depths_swept"]), max(fit["depths_swept"]), 50)
+        k = np.linspace(min(fit.depths_swept), max(fit.depths_swept), 50)
         u, v = cost["seconds_intercept"], cost["seconds_per_layer"]
         out += ax.plot(k, 1e3 * (u + v * k), color="black", lw=1.4,
                        label=f"straight-line fit: {cost_words(u, v)}")
-    depth_panel(ax, fit["depths_swept"], "milliseconds per update", "cost of one update", log=False)
+    depth_panel(ax, fit.depths_swept, "milliseconds per update", "cost of one update", log=False)
     ax.set_ylim(bottom=0)
     return out
 
 
-def plot_total_cost(fit: dict[str, Any], runs: Sequence[RunResult], ax: Axes) -> list[Artist]:
+def plot_total_cost(fit: FitGroup, runs: Sequence[RunResult], ax: Axes) -> list[Artist]:
     """Compute to convergence (updates x cost per update, on the fit's cost basis) against depth;
     compute-optimal depth marked."""
-    cost = fit["planning"]["compute_optimal_depth"].get("cost_model")
+    cost = fit.planning.compute_optimal_depth.cost_model
+    cost = cost if given(cost) else None
     flops = cost_basis_of(cost) == "flops"
     timed = [r for r in (runs if flops else _timed(runs)) if r.status in ("converged", "censored")]
     per_update = (lambda r: float(cost_per_update(cost, [r.depth])[0])) if flops else \
@@ -90,20 +92,20 @@ def plot_total_cost(fit: dict[str, Any], runs: Sequence[RunResult], ax: Axes) ->
         if rs:
             out.append(ax.scatter([r.depth for r in rs], [r.iterations * per_update(r) for r in rs],
                                   s=14 if status == "converged" else 28, zorder=3, **style))
-    curve = total_cost_curve(fit)
+    curve = total_cost_curve(fit.to_dict())
     if curve is not None:
         out += ax.plot(curve[0], curve[1], color=BLUE, lw=1.8, zorder=4,
                        label="fitted T(K) × FLOPs per update" if flops else
                        "fitted T(K) × fitted seconds per update")
-    opt = fit["planning"]["compute_optimal_depth"]
-    if opt["depth"] is not None:
-        if opt["ci"]:
-            out.append(ax.axvspan(*opt["ci"], color=GREY, alpha=0.13, lw=0, zorder=0))
-        tag = " (extrapolated)" if opt["extrapolated"] else ""
-        out.append(ax.axvline(opt["depth"], color=VERMILLION, ls="--", lw=1.2,
-                              label=f"compute-optimal K = {opt['depth']}"
-                                    f"{ci_words(opt['ci'], 'd')}{tag}"))
-    depth_panel(ax, fit["depths_swept"], "FLOPs to converge (analytic count)" if flops else
+    opt = fit.planning.compute_optimal_depth
+    if opt.depth is not None:
+        if opt.ci:
+            out.append(ax.axvspan(*opt.ci, color=GREY, alpha=0.13, lw=0, zorder=0))
+        tag = " (extrapolated)" if opt.extrapolated else ""
+        out.append(ax.axvline(opt.depth, color=VERMILLION, ls="--", lw=1.2,
+                              label=f"compute-optimal K = {opt.depth}"
+                                    f"{ci_words(opt.ci, 'd')}{tag}"))
+    depth_panel(ax, fit.depths_swept, "FLOPs to converge (analytic count)" if flops else
                 "seconds of compute to converge (this machine)", "cost of training to convergence")
     return out
 
@@ -187,9 +189,14 @@ def layer_colourbar(fig: Figure, axes: Sequence[Axes], n_layers: int) -> None:
     bar.set_ticks(sorted({1, n_layers, *range(1, n_layers + 1, max(1, n_layers // 6))}))
 
 
-def _transition(fit: dict[str, Any], depth: int) -> float | None:
-    rows = [r["transition_step"] for r in (fit.get("diffusion") or {}).get("layers", [])
-            if r["depth"] == depth and r["transition_step"] is not None]
+def _by_depth(fit: FitGroup) -> list[DiffusionDepth]:
+    """`diffusion.by_depth`, [] when the fit has none."""
+    return (fit.diffusion.by_depth or []) if fit.diffusion else []
+
+
+def _transition(fit: FitGroup, depth: int) -> float | None:
+    layers = (fit.diffusion.layers or []) if fit.diffusion else []
+    rows = [r.transition_step for r in layers if r.depth == depth and r.transition_step is not None]
     return float(np.median(rows)) if rows else None
 
 
@@ -200,7 +207,7 @@ def _draw_transition(ax: Axes, step: float | None) -> list[Artist]:
                        label=f"transition (median over layers): step {step:.0f}")]
 
 
-def plot_displacement(fit: dict[str, Any], runs: Sequence[RunResult], ax: Axes, *,
+def plot_displacement(fit: FitGroup, runs: Sequence[RunResult], ax: Axes, *,
                       depth: int) -> list[Artist]:
     """Weight displacement ||W_t - W_0|| per layer at one depth, with slope-1 and slope-1/2 guides."""
     steps, med = layer_medians([r for r in runs if r.depth == depth], "displacement")
@@ -227,7 +234,7 @@ def plot_displacement(fit: dict[str, Any], runs: Sequence[RunResult], ax: Axes, 
     return out
 
 
-def plot_snr(fit: dict[str, Any], runs: Sequence[RunResult], ax: Axes, *, depth: int) -> list[Artist]:
+def plot_snr(fit: FitGroup, runs: Sequence[RunResult], ax: Axes, *, depth: int) -> list[Artist]:
     """Gradient signal-to-noise ratio per layer in dB at one depth, transition step marked."""
     steps, med = layer_medians([r for r in runs if r.depth == depth], "snr_db")
     out = _layer_lines(ax, steps, med)
@@ -242,21 +249,26 @@ def plot_snr(fit: dict[str, Any], runs: Sequence[RunResult], ax: Axes, *, depth:
     return out
 
 
-def has_depth_dynamics(fit: dict[str, Any]) -> bool:
+def has_depth_dynamics(fit: FitGroup) -> bool:
     """Whether fit.json carries per-depth probe measures (`diffusion.by_depth`) at two depths or more."""
-    return len((fit.get("diffusion") or {}).get("by_depth") or []) >= 2
+    return len(_by_depth(fit)) >= 2
 
 
-def _depth_errorbars(fit: dict[str, Any], ax: Axes, key: str) -> list[Artist]:
-    """Median of `diffusion.by_depth[*][key]` against K, bars over its between-seed spread."""
-    rows = [r for r in (fit.get("diffusion") or {}).get("by_depth") or [] if r.get(key) is not None]
+def _depth_errorbars(fit: FitGroup, ax: Axes, key: str) -> list[Artist]:
+    """Median of `diffusion.by_depth[*].<key>` against K, bars over its between-seed spread."""
+    rows = [r for r in _by_depth(fit) if given(getattr(r, key))]
     if not rows:
         return []
-    k = np.array([r["depth"] for r in rows], float)
-    y = np.array([r[key] for r in rows], float)
-    lo = np.array([r[key] if r.get(f"{key}_lo") is None else r[f"{key}_lo"] for r in rows], float)
-    hi = np.array([r[key] if r.get(f"{key}_hi") is None else r[f"{key}_hi"] for r in rows], float)
-    kinds = {r.get("spread") for r in rows}
+
+    def bound(r: DiffusionDepth, end: str) -> float:
+        v = getattr(r, f"{key}_{end}")
+        return v if given(v) else getattr(r, key)
+
+    k = np.array([r.depth for r in rows], float)
+    y = np.array([getattr(r, key) for r in rows], float)
+    lo = np.array([bound(r, "lo") for r in rows], float)
+    hi = np.array([bound(r, "hi") for r in rows], float)
+    kinds = {r.spread if given(r.spread) else None for r in rows}
     spread = {frozenset({"iqr"}): "quartiles", frozenset({"min_max"}): "min to max"}.get(
         frozenset(kinds), "quartiles (min to max under 4 runs)")
     bars = ax.errorbar(k, y, yerr=[np.maximum(y - lo, 0), np.maximum(hi - y, 0)], color=BLUE,
@@ -265,38 +277,37 @@ def _depth_errorbars(fit: dict[str, Any], ax: Axes, key: str) -> list[Artist]:
     return [bars]
 
 
-def plot_snr_drop_by_depth(fit: dict[str, Any], ax: Axes) -> list[Artist]:
+def plot_snr_drop_by_depth(fit: FitGroup, ax: Axes) -> list[Artist]:
     """Median fall of the gradient SNR (dB) per depth with its between-seed spread."""
     out = _depth_errorbars(fit, ax, "snr_drop_db")
     out.append(ax.axhline(NO_DROP_DB, color=VERMILLION, ls="--", lw=1.0,
                           label=f"{NO_DROP_DB:g} dB: under it, no drop"))
     out.append(ax.axhline(0.0, color=GREY, lw=0.8))
-    depth_panel(ax, fit["depths_swept"], "gradient SNR drop, early to late (dB)",
+    depth_panel(ax, fit.depths_swept, "gradient SNR drop, early to late (dB)",
                 "SNR drop per depth", log=False)
     return out
 
 
-def plot_late_exponent_by_depth(fit: dict[str, Any], ax: Axes) -> list[Artist]:
+def plot_late_exponent_by_depth(fit: FitGroup, ax: Axes) -> list[Artist]:
     """Median late-phase growth exponent of the displacement per depth, guides at 1 and 1/2, and
     alpha from the depth law with its interval.
 
     The exponent over the last half of each run (`late_window_exponent`) where fit.json has it,
     else (older files) the one after the transition.
     """
-    rows = (fit.get("diffusion") or {}).get("by_depth") or []
-    window = any(r.get("late_window_exponent") is not None for r in rows)
+    window = any(given(r.late_window_exponent) for r in _by_depth(fit))
     out = _depth_errorbars(fit, ax, "late_window_exponent" if window else "late_exponent")
     out.append(ax.axhline(1.0, color="black", ls="--", lw=1.0, label="1: drift (D ∝ t)"))
     out.append(ax.axhline(0.5, color="black", ls=":", lw=1.4, label="1/2: diffusion (D ∝ √t)"))
-    late = (fit.get("diffusion") or {}).get("late_window") or {}
-    if late.get("alpha") is not None:
-        ci = late.get("alpha_ci")
+    late = fit.diffusion.late_window if fit.diffusion else None
+    if late and given(late.alpha):
+        ci = late.alpha_ci or None
         if ci and None not in ci:
             out.append(ax.axhspan(ci[0], ci[1], color=VERMILLION, alpha=0.15, lw=0, zorder=0))
-        out.append(ax.axhline(late["alpha"], color=VERMILLION, lw=1.2,
-                              label=f"α from the depth law: {late['alpha']:.2f}{ci_words(ci, '.2f')}"))
+        out.append(ax.axhline(late.alpha, color=VERMILLION, lw=1.2,
+                              label=f"α from the depth law: {late.alpha:.2f}{ci_words(ci, '.2f')}"))
     what = "steps T/2 to T" if window else "after the transition"
-    depth_panel(ax, fit["depths_swept"], f"exponent of ‖W_t − W_0‖ ({what})",
+    depth_panel(ax, fit.depths_swept, f"exponent of ‖W_t − W_0‖ ({what})",
                 "displacement exponent per depth", log=False)
     return out
 
@@ -337,19 +348,18 @@ def plot_information_plane(runs: Sequence[RunResult], ax: Axes, *, depth: int) -
 
 # ---------------------------------------------------------------- learning rates
 
-def plot_rate_product(fit: dict[str, Any], runs: Sequence[RunResult], ax: Axes) -> list[Artist]:
+def plot_rate_product(fit: FitResult, runs: Sequence[RunResult], ax: Axes) -> list[Artist]:
     """Median T·lr·K per depth for each fixed-rate group: flat where depth acts as a rate multiplier."""
     out: list[Artist] = []
-    groups = [g for g in fitted_groups(fit) if g["group"].get("lr_mode") == "fixed"
-              and g["group"].get("learning_rate")]
+    groups = [g for g in fitted_groups(fit) if g.group.lr_mode == "fixed" and g.group.learning_rate]
     for i, g in enumerate(groups):
         colour, marker, line = GROUP_STYLES[i % len(GROUP_STYLES)]
-        lr = g["group"]["learning_rate"]
-        rows = [r for r in g["per_depth"] if r["median"] is not None]
-        out += ax.plot([r["depth"] for r in rows], [r["median"] * lr * r["depth"] for r in rows],
+        lr = g.group.learning_rate
+        rows = [r for r in g.per_depth if r.median is not None]
+        out += ax.plot([r.depth for r in rows], [r.median * lr * r.depth for r in rows],
                        color=colour, marker=marker, ls=line, lw=1.3, ms=5,
-                       label=group_label(g["group"]))
-    depth_panel(ax, sorted({k for g in groups for k in g["depths_swept"]}), "median T × lr × K",
+                       label=group_label(g.group))
+    depth_panel(ax, sorted({k for g in groups for k in g.depths_swept}), "median T × lr × K",
                 "flat where depth multiplies the rate")
     return out
 

@@ -1,6 +1,6 @@
 """The report's figures, each drawn by a small function onto Axes it is given: the depth law.
 
-Every `plot_*` function takes the fit (the content of fit.json) and/or run
+Every `plot_*` function takes the fit (a `FitResult`, or one `FitGroup` of it) and/or run
 records and draws onto `ax`, returning the artists it added; nothing here
 touches pyplot's global state, and `save_figure` writes a Figure as PNG and
 SVG. The figures of cost, loss curves, probes and learning rates live in
@@ -24,8 +24,9 @@ from matplotlib.axes import Axes
 from matplotlib.figure import Figure
 from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter, NullLocator
 
-from ..fitting.inputs import runs_of_group
+from ..fit_record import FitGroup, FitResult, GroupLabel, given
 from ..records import RunResult, write_bytes_atomic
+from .inputs import group_runs
 
 # Okabe-Ito: black, orange, sky blue, bluish green, yellow, blue, vermillion, reddish purple
 OKABE_ITO = ("#000000", "#E69F00", "#56B4E9", "#009E73", "#F0E442", "#0072B2", "#D55E00", "#CC79A7")
@@ -73,20 +74,25 @@ def save_figure(fig: Figure, folder: Path, name: str) -> tuple[Path, Path]:
 
 # ---------------------------------------------------------------- shared helpers
 
-def group_label(group: dict[str, Any] | None) -> str:
+def group_label(group: GroupLabel | None) -> str:
     """Short words for a rate group: 'fixed rate 0.02', 'rate tuned per depth'."""
-    if not group:
+    if not group or not group.to_dict():
         return "all runs"
-    if group.get("lr_mode") == "tuned":
+    if group.lr_mode == "tuned":
         return "rate tuned per depth"
-    lr = group.get("learning_rate")
-    return "rate not recorded" if lr is None else f"fixed rate {lr:g}"
+    lr = group.learning_rate
+    return "rate not recorded" if not given(lr) else f"fixed rate {lr:g}"
 
 
-def fitted_groups(fit: dict[str, Any]) -> list[dict[str, Any]]:
+def fitted_groups(fit: FitGroup) -> list[FitGroup]:
     """The rate groups that were fitted (the top level alone when there is one group)."""
-    groups = [g for g in fit.get("by_learning_rate") or [] if "power_law" in g]
-    return groups or [fit]
+    return fit.groups if isinstance(fit, FitResult) else [fit]
+
+
+def _law_curve(g: FitGroup, depths: Sequence[float]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    from ..fitting.assemble import power_law_curve
+
+    return power_law_curve({"power_law": g.power_law.to_dict()}, depths)
 
 
 def _number(v: float) -> str:
@@ -193,57 +199,55 @@ def _draw_runs(ax: Axes, runs: Sequence[RunResult], colour: str, marker: str,
     return out
 
 
-def _draw_medians(ax: Axes, fit: dict[str, Any], colour: str, marker: str,
+def _draw_medians(ax: Axes, fit: FitGroup, colour: str, marker: str,
                   label: str | None) -> list[Artist]:
-    rows = [r for r in fit["per_depth"] if r["median"] is not None]
+    rows = [r for r in fit.per_depth if r.median is not None]
     if not rows:
         return []
-    k = np.array([r["depth"] for r in rows], float)
-    med = np.array([r["median"] for r in rows], float)
-    lo = np.array([r["q25"] if r["q25"] is not None else r["median"] for r in rows], float)
-    hi = np.array([r["q75"] if r["q75"] is not None else r["median"] for r in rows], float)
+    k = np.array([r.depth for r in rows], float)
+    med = np.array([r.median for r in rows], float)
+    lo = np.array([r.q25 if r.q25 is not None else r.median for r in rows], float)
+    hi = np.array([r.q75 if r.q75 is not None else r.median for r in rows], float)
     bars = ax.errorbar(k, med, yerr=[med - lo, hi - med], fmt=marker, ms=5.5, mfc=colour,
                        mec="black", mew=0.8, ecolor="black", elinewidth=1.0, capsize=2.5,
                        zorder=5, label=label)
     return [bars]
 
 
-def _law_label(fit: dict[str, Any], prefix: str = "") -> str:
-    pl, rev = fit["power_law"], fit["reversal"]
+def _law_label(fit: FitGroup, prefix: str = "") -> str:
+    pl, rev, model = fit.power_law, fit.reversal, fit.curve.model
     if prefix:       # one of several groups: short, the figure's caption says the rest
-        alpha = f", α = {pl['alpha']:.2f}" if pl.get("alpha") is not None else ""
-        return f"{prefix}s = {pl['slope']:.2f}{ci_words(pl['slope_ci'], '.2f')}{alpha}"
-    text = f"fitted law T ∝ K^s, s = {pl['slope']:.2f}{ci_words(pl['slope_ci'], '.2f')}"
-    if pl.get("alpha") is not None:
-        text += f"\nα = 1/(1 − s) = {pl['alpha']:.2f}{ci_words(pl['alpha_ci'], '.2f')}"
-    if fit["curve"]["model"] == "segmented" and rev.get("rising_slope") is not None:
-        text += f"; slope past K*: {rev['rising_slope']:.2f}"
-    if fit["curve"]["model"] not in ("power_law", "segmented"):
+        alpha = f", α = {pl.alpha:.2f}" if given(pl.alpha) else ""
+        return f"{prefix}s = {pl.slope:.2f}{ci_words(pl.slope_ci, '.2f')}{alpha}"
+    text = f"fitted law T ∝ K^s, s = {pl.slope:.2f}{ci_words(pl.slope_ci, '.2f')}"
+    if given(pl.alpha):
+        text += f"\nα = 1/(1 − s) = {pl.alpha:.2f}{ci_words(pl.alpha_ci, '.2f')}"
+    if model == "segmented" and given(rev.rising_slope):
+        text += f"; slope past K*: {rev.rising_slope:.2f}"
+    if model not in ("power_law", "segmented"):
         from ..fitting.summary import MODEL_LABELS
-        text += f"\ncurve: {MODEL_LABELS.get(fit['curve']['model'], fit['curve']['model'])} (chosen by AICc)"
+        text += f"\ncurve: {MODEL_LABELS.get(model, model)} (chosen by AICc)"
     return text
 
 
-def _draw_law(ax: Axes, fit: dict[str, Any], colour: str, line: Any, prefix: str,
+def _draw_law(ax: Axes, fit: FitGroup, colour: str, line: Any, prefix: str,
               band_label: str | None) -> list[Artist]:
     """The fitted law with its 95 % band, and its dotted extension to any extrapolated figure."""
-    from ..fitting.assemble import power_law_curve
-
-    c = fit["curve"]
+    c = fit.curve
     out: list[Artist] = []
-    k = np.asarray(c["depths"], float)
-    if None not in c["lo"] and None not in c["hi"]:
-        out.append(ax.fill_between(k, c["lo"], c["hi"], color=colour, alpha=0.18, lw=0, zorder=1,
+    k = np.asarray(c.depths, float)
+    if None not in c.lo and None not in c.hi:
+        out.append(ax.fill_between(k, c.lo, c.hi, color=colour, alpha=0.18, lw=0, zorder=1,
                                    label=band_label))
-    out.extend(ax.plot(k, c["median"], color=colour, ls=line, lw=1.8, zorder=4,
+    out.extend(ax.plot(k, c.median, color=colour, ls=line, lw=1.8, zorder=4,
                        label=_law_label(fit, prefix)))
     far = extrapolated_depths(fit)
-    if far and c["model"] == "power_law":
+    if far and c.model == "power_law":
         top = max(far + [k[-1]])
         bottom = min(far + [k[0]])
         grid = np.geomspace(min(bottom, k[0]), max(top, k[-1]), 80)
         grid = grid[(grid < k[0]) | (grid > k[-1])]
-        med, _, _ = power_law_curve(fit, grid)
+        med, _, _ = _law_curve(fit, grid)
         for side in (grid < k[0], grid > k[-1]):
             if side.any():
                 out.extend(ax.plot(grid[side], med[side], color=colour, ls=":", lw=1.6, zorder=4,
@@ -251,93 +255,91 @@ def _draw_law(ax: Axes, fit: dict[str, Any], colour: str, line: Any, prefix: str
     return out
 
 
-def extrapolated_depths(fit: dict[str, Any]) -> list[int]:
+def extrapolated_depths(fit: FitGroup) -> list[int]:
     """Planning depths of a fit that lie outside the swept depths."""
-    plan = fit["planning"]
-    out = [plan[key]["depth"] for key in ("last_depth_worth_adding", "compute_optimal_depth")
-           if plan[key]["depth"] is not None and plan[key]["extrapolated"]]
-    if plan.get("recommended_extrapolated") and plan.get("recommended_depth") is not None:
-        out.append(plan["recommended_depth"])
+    plan = fit.planning
+    out = [p.depth for p in (plan.last_depth_worth_adding, plan.compute_optimal_depth)
+           if p.depth is not None and p.extrapolated]
+    if plan.recommended_extrapolated and given(plan.recommended_depth):
+        out.append(plan.recommended_depth)
     return sorted(set(out))
 
 
-def _draw_reversal(ax: Axes, fit: dict[str, Any], colour: str, prefix: str = "") -> list[Artist]:
-    rev = fit["reversal"]
-    if rev["status"] != "observed" or rev["depth"] is None:
+def _draw_reversal(ax: Axes, fit: FitGroup, colour: str, prefix: str = "") -> list[Artist]:
+    rev = fit.reversal
+    if rev.status != "observed" or rev.depth is None:
         return []
     out: list[Artist] = []
-    if rev["depth_ci"]:
-        out.append(ax.axvspan(*rev["depth_ci"], color=GREY, alpha=0.15, lw=0, zorder=0))
-    out.append(ax.axvline(rev["depth"], color=colour, ls="--", lw=1.1, zorder=3,
-                          label=f"{prefix or 'reversal depth '}K* = {rev['depth']:.1f}"
-                                f"{ci_words(rev['depth_ci'], '.1f')}" + ("" if prefix else " (shaded)")))
+    if rev.depth_ci:
+        out.append(ax.axvspan(*rev.depth_ci, color=GREY, alpha=0.15, lw=0, zorder=0))
+    out.append(ax.axvline(rev.depth, color=colour, ls="--", lw=1.1, zorder=3,
+                          label=f"{prefix or 'reversal depth '}K* = {rev.depth:.1f}"
+                                f"{ci_words(rev.depth_ci, '.1f')}" + ("" if prefix else " (shaded)")))
     return out
 
 
-def _curve_value(fit: dict[str, Any], k: float) -> float | None:
-    from ..fitting.assemble import power_law_curve
-
-    c = fit["curve"]
-    value = _interp_loglog(c["depths"], c["median"], k)
-    if value is None and c["model"] == "power_law":
-        value = float(power_law_curve(fit, [k])[0][0])
+def _curve_value(fit: FitGroup, k: float) -> float | None:
+    c = fit.curve
+    value = _interp_loglog(c.depths, c.median, k)
+    if value is None and c.model == "power_law":
+        value = float(_law_curve(fit, [k])[0][0])
     return value
 
 
 _BEYOND = {"facecolor": "#f4f4f4", "edgecolor": "#c8c8c8", "hatch": "///", "linewidth": 0}
 
 
-def _draw_beyond(ax: Axes, fit: dict[str, Any]) -> list[Artist]:
+def _draw_beyond(ax: Axes, fit: FitGroup) -> list[Artist]:
     """Shade what lies beyond the swept depths and mark each planning figure found there."""
     far = extrapolated_depths(fit)
     if not far:
         return []
-    swept = fit["depths_swept"]
+    swept = fit.depths_swept
     out: list[Artist] = []
     if max(far) > swept[-1]:
         out.append(ax.axvspan(swept[-1], max(far) * 1.12, zorder=0, **_BEYOND,
                               label="beyond the swept depths: not measured"))
     if min(far) < swept[0]:
         out.append(ax.axvspan(min(far) / 1.12, swept[0], zorder=0, **_BEYOND))
-    plan = fit["planning"]
-    for key, label, marker in (("last_depth_worth_adding", "last depth worth adding", "D"),
-                               ("compute_optimal_depth", "compute-optimal depth", "P")):
-        k = plan[key]["depth"]
-        y = None if k is None or not plan[key]["extrapolated"] else _curve_value(fit, k)
+    plan = fit.planning
+    for p, label, marker in ((plan.last_depth_worth_adding, "last depth worth adding", "D"),
+                             (plan.compute_optimal_depth, "compute-optimal depth", "P")):
+        k = p.depth
+        y = None if k is None or not p.extrapolated else _curve_value(fit, k)
         if y is not None:
             out.append(ax.scatter([k], [y], s=55, marker=marker, facecolor="white", edgecolor="black",
                                   linewidth=1.1, zorder=6, label=f"{label}: K = {k} (extrapolated)"))
     return out
 
 
-def _draw_plan(ax: Axes, fit: dict[str, Any], whose: str = "") -> list[Artist]:
-    plan = fit["planning"]
-    k = plan.get("recommended_depth")
-    y = None if k is None else _curve_value(fit, k)
+def _draw_plan(ax: Axes, fit: FitGroup, whose: str = "") -> list[Artist]:
+    plan = fit.planning
+    k = plan.recommended_depth
+    y = None if not given(k) else _curve_value(fit, k)
     if y is None:
         return []
-    tag = " (extrapolated)" if plan.get("recommended_extrapolated") else ""
+    tag = " (extrapolated)" if plan.recommended_extrapolated else ""
     return [ax.scatter([k], [y], s=150, marker="*", facecolor="white", edgecolor="black",
                        linewidth=1.2, zorder=6, label=f"depth to plan for{whose}: K = {k}{tag}")]
 
 
-def _note_open_end(ax: Axes, fit: dict[str, Any]) -> list[Artist]:
-    rev, swept = fit["reversal"], fit["depths_swept"]
-    if rev["status"] != "beyond_range":
+def _note_open_end(ax: Axes, fit: FitGroup) -> list[Artist]:
+    rev, swept = fit.reversal, fit.depths_swept
+    if rev.status != "beyond_range":
         return []
-    text = (f"rise past K = {fit['power_law']['depths_used'][-1]} hinted, not established"
-            if rev.get("rise_suspected") else f"T still falls at K = {swept[-1]}:\nno reversal in range")
+    text = (f"rise past K = {fit.power_law.depths_used[-1]} hinted, not established"
+            if rev.rise_suspected else f"T still falls at K = {swept[-1]}:\nno reversal in range")
     return [ax.text(0.98, 0.97, text, transform=ax.transAxes, ha="right", va="top", fontsize=7.5,
                     bbox={"boxstyle": "round,pad=0.3", "fc": "white", "ec": "#999999", "lw": 0.6})]
 
 
-def plot_scaling(fit: dict[str, Any], runs: Sequence[RunResult], ax: Axes, *,
-                 groups: Sequence[dict[str, Any]] | None = None,
+def plot_scaling(fit: FitGroup, runs: Sequence[RunResult], ax: Axes, *,
+                 groups: Sequence[FitGroup] | None = None,
                  numbers_in_legend: bool = True) -> list[Artist]:
     """Log-log updates against depth: every run, medians with quartiles, fitted law with band, K*.
 
     Args:
-        fit: a fit.json dict (the top level, or one `by_learning_rate` entry).
+        fit: the fit (a `FitResult`, or one `by_learning_rate` `FitGroup`).
         runs: the run records; each group draws the runs it describes.
         ax: where to draw.
         groups: rate groups to overlay (default: every fitted group of `fit`,
@@ -354,8 +356,8 @@ def plot_scaling(fit: dict[str, Any], runs: Sequence[RunResult], ax: Axes, *,
     for i, g in enumerate(groups):
         colour, marker, line = GROUP_STYLES[i % len(GROUP_STYLES)] if several else \
             (BLUE, "o", "-")
-        prefix = f"{group_label(g.get('group'))}: " if several else ""
-        out += _draw_runs(ax, runs_of_group(g.get("group"), runs), colour, marker, with_labels=i == 0)
+        prefix = f"{group_label(g.group)}: " if several else ""
+        out += _draw_runs(ax, group_runs(g, runs), colour, marker, with_labels=i == 0)
         first = i == 0
         out += _draw_medians(ax, g, colour if several else "white", marker if several else "s",
                              None if not first else "median per depth, bars: quartiles"
@@ -365,7 +367,7 @@ def plot_scaling(fit: dict[str, Any], runs: Sequence[RunResult], ax: Axes, *,
                                                  else "95 % band of the fitted line"))
         out += _draw_reversal(ax, g, "black" if not several else colour, prefix)
     primary = groups[0] if not several else fit
-    out += _draw_plan(ax, primary, f" ({group_label(fit.get('group'))})" if several else "")
+    out += _draw_plan(ax, primary, f" ({group_label(fit.group)})" if several else "")
     out += _note_open_end(ax, primary)
     out += _draw_beyond(ax, primary)
     if not numbers_in_legend:
@@ -375,7 +377,7 @@ def plot_scaling(fit: dict[str, Any], runs: Sequence[RunResult], ax: Axes, *,
             for start, label in generic.items():
                 if a.get_label().startswith(start):
                     a.set_label(label)
-    swept = sorted({k for g in groups for k in g["depths_swept"]} | set(extrapolated_depths(primary)))
+    swept = sorted({k for g in groups for k in g.depths_swept} | set(extrapolated_depths(primary)))
     ax.legend(handles=labelled(out), loc="best")
     depth_panel(ax, swept, "SGD updates to convergence T")
     return out

@@ -2,13 +2,20 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from functools import cached_property
 from pathlib import Path
-from typing import Any
+from typing import Any, Sequence
 
+from ..fit_record import FitGroup, FitResult
 from ..fitting.inputs import runs_of_group
 from ..records import RunResult
 
-__all__ = ["ReportInputs"]
+__all__ = ["ReportInputs", "group_runs"]
+
+
+def group_runs(g: FitGroup, runs: Sequence[RunResult]) -> list[RunResult]:
+    """The runs the rate group of `g` describes (all of them when it names none)."""
+    return runs_of_group(g.group.to_dict() if g.group else None, runs)
 
 
 @dataclass
@@ -26,6 +33,11 @@ class ReportInputs:
     tuning: list[dict[str, Any]] = field(default_factory=list)
     rounds: list[dict[str, Any]] = field(default_factory=list)
 
+    @cached_property
+    def result(self) -> FitResult:
+        """The fit as a typed record (`fit` stays the dict: number references name its paths)."""
+        return FitResult.from_dict(self.fit)
+
     @property
     def primary_runs(self) -> list[RunResult]:
-        return runs_of_group(self.fit.get("group"), self.runs)
+        return group_runs(self.result, self.runs)

@@ -7,8 +7,8 @@ script, font or link to anything outside the fragment.
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Any
 
+from ..fit_record import FitResult
 from .answer import answer_blocks
 from .inputs import ReportInputs
 from .markup import Words, html_body
@@ -23,9 +23,10 @@ _STYLE = (".depthplan-fit{font:14px/1.45 system-ui,sans-serif;max-width:52em}"
           ".depthplan-fit .badge{font-size:.8em;padding:0 4px;border:1px solid #b35c00;color:#b35c00}")
 
 
-def fit_html(fit: dict[str, Any]) -> str:
-    """HTML for a fit (a fit.json dict): the depth to plan for, why, how sure, the fit table, warnings."""
-    inp = ReportInputs(path=Path(str(fit.get("source") or "table")), kind="table", fit=fit,
+def fit_html(result: FitResult) -> str:
+    """HTML for a fit: the depth to plan for, why, how sure, the fit table, warnings."""
+    fit = result.to_dict()            # the number references name paths into the dict
+    inp = ReportInputs(path=Path(str(result.source or "table")), kind="table", fit=fit,
                        fit_note="", runs=[])
     w = Words(fit)
     blocks = answer_blocks(inp, w) + fit_table_blocks(inp, w) + warning_blocks(inp, w)

@@ -7,11 +7,12 @@ Everything right of the largest proxy used in the fit is extrapolation and lies 
 """
 from __future__ import annotations
 
-from typing import Any, Sequence
+from typing import Sequence
 
 from matplotlib.artist import Artist
 from matplotlib.axes import Axes
 
+from ..fit_record import FitResult, Transfer, given
 from . import figures as F
 
 __all__ = ["has_transfer_figure", "plot_transfer_panel"]
@@ -20,9 +21,9 @@ _AXIS_WORDS = {"width": "proxy hidden width W", "train_rows": "proxy training ro
 _BEYOND = {"facecolor": "#f4f4f4", "edgecolor": "#c8c8c8", "hatch": "///", "linewidth": 0}
 
 
-def has_transfer_figure(fit: dict[str, Any]) -> bool:
-    t = fit.get("transfer") or {}
-    return bool(t.get("curve") and t.get("axes"))
+def has_transfer_figure(fit: FitResult) -> bool:
+    t = fit.transfer
+    return bool(t and t.curve and t.axes)
 
 
 def _yerr(value: float, ci: Sequence[float] | None) -> list[list[float]]:
@@ -31,10 +32,11 @@ def _yerr(value: float, ci: Sequence[float] | None) -> list[list[float]]:
     return [[max(0.0, value - ci[0])], [max(0.0, ci[1] - value)]]
 
 
-def plot_transfer_panel(fit: dict[str, Any], ax: Axes, quantity: str) -> list[Artist]:
+def plot_transfer_panel(fit: FitResult, ax: Axes, quantity: str) -> list[Artist]:
     """One panel: `quantity` "reversal_depth" (K*, log axis) or "slope" (s) against proxy size."""
-    t = fit["transfer"]
-    curve, axis = t["curve"], t["curve"]["axis"]
+    t = fit.transfer
+    curve = t.curve       # a plain block: x, the bands, largest_proxy, fixed
+    axis = curve["axis"]
     log_y = quantity == "reversal_depth"
     name = "K*" if log_y else "s"
     out: list[Artist] = []
@@ -50,7 +52,7 @@ def plot_transfer_panel(fit: dict[str, Any], ax: Axes, quantity: str) -> list[Ar
         out.append(ax.fill_between(x_all, band["lo"], band["hi"], color=F.BLUE, alpha=0.16, lw=0, zorder=1,
                                    label="95 % prediction band of the trend"))
         out.extend(ax.plot(x_all, band["median"], color=F.BLUE, lw=1.6, zorder=3, label="fitted trend"))
-    rows = [r for r in t["sizes"] if r.get(quantity) is not None and r.get(axis)]
+    rows = [r for r in t.sizes if r.get(quantity) is not None and r.get(axis)]
     for i, r in enumerate(rows):
         out.append(ax.errorbar([r[axis]], [r[quantity]], yerr=_yerr(r[quantity], r.get(f"{quantity}_ci")),
                                fmt="o", ms=6, mfc=F.BLUE, mec="black", mew=0.8, ecolor="black", capsize=2.5,
@@ -70,13 +72,13 @@ def plot_transfer_panel(fit: dict[str, Any], ax: Axes, quantity: str) -> list[Ar
     return out
 
 
-def _draw_check(ax: Axes, t: dict[str, Any], axis: str, quantity: str, name: str) -> list[Artist]:
-    v = t.get("verify") or {}
-    x = v.get(axis)
+def _draw_check(ax: Axes, t: Transfer, axis: str, quantity: str, name: str) -> list[Artist]:
+    v = t.verify
+    x = getattr(v, axis) if v else None
     if not x:
         return []
     out: list[Artist] = []
-    p, m = v.get("predicted") or {}, v.get("measured") or {}
+    p, m = v.predicted or {}, v.measured or {}
     if p.get(quantity) is not None:
         out.append(ax.errorbar([x / 1.04], [p[quantity]], yerr=_yerr(p[quantity], p.get(f"{quantity}_ci")),
                                fmt="D", ms=6, mfc="white", mec=F.VERMILLION, mew=1.4, ecolor=F.VERMILLION,
@@ -88,14 +90,16 @@ def _draw_check(ax: Axes, t: dict[str, Any], axis: str, quantity: str, name: str
     return out
 
 
-def _draw_target(ax: Axes, t: dict[str, Any], axis: str, quantity: str, name: str) -> list[Artist]:
-    tg = t.get("target") or {}
-    x = tg.get(axis)
+def _draw_target(ax: Axes, t: Transfer, axis: str, quantity: str, name: str) -> list[Artist]:
+    tg = t.target
+    x = getattr(tg, axis) if tg else None
     if not x:
         return []
     out = [ax.axvline(x, color=F.GREY, ls="--", lw=1.0, zorder=2, label="target job")]
-    if tg.get(quantity) is not None:
-        out.append(ax.errorbar([x], [tg[quantity]], yerr=_yerr(tg[quantity], tg.get(f"{quantity}_ci")),
+    value = getattr(tg, quantity)
+    if given(value):
+        ci = getattr(tg, f"{quantity}_ci")
+        out.append(ax.errorbar([x], [value], yerr=_yerr(value, ci if given(ci) else None),
                                fmt="*", ms=11, mfc=F.ORANGE, mec="black", mew=0.8, ecolor=F.ORANGE,
                                capsize=3, zorder=7, label="target: carried along size (95 % interval)"))
     return out

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 from typing import Any, Sequence
 
+from ..fit_record import FitResult, Transfer, TransferVerify, given
 from ..fitting.transfer import FAR_FACTOR, SHORT_FACTOR
 from ..records import RunResult
 from .inputs import ReportInputs
@@ -22,9 +23,16 @@ def _size(width: Any, rows: Any) -> str:
     return ", ".join(p for p in (f"width {width}" if width else "", f"{rows:,} training rows" if rows else "") if p)
 
 
-def headline_runs(fit: dict[str, Any], runs: Sequence[RunResult]) -> list[RunResult]:
+def _transfer(fit: FitResult) -> Transfer | None:
+    """The fit's `transfer` block, None when it has none (or an empty one)."""
+    t = fit.transfer
+    return t if t and t.to_dict() else None
+
+
+def headline_runs(fit: FitResult, runs: Sequence[RunResult]) -> list[RunResult]:
     """The runs of the proxy size the headline describes (all runs without size axes)."""
-    head = (fit.get("transfer") or {}).get("headline_size")
+    t = _transfer(fit)
+    head = t.headline_size if t else None
     if not head:
         return list(runs)
     w, n = head.get("width") or 0, head.get("train_rows") or 0
@@ -35,15 +43,15 @@ def _factor_words(factors: dict[str, float]) -> str:
     return ", ".join(f"{v:.1f}x the largest proxy's {a.replace('_', ' ')}" for a, v in factors.items())
 
 
-def _check_words(v: dict[str, Any], w: Words) -> str:
-    p, m = v.get("predicted") or {}, v.get("measured") or {}
-    where = _size(v.get("width"), v.get("train_rows"))
-    when = (f", stored {v['predicted_at']} before it trained" if v.get("predicted_at")
-            and v.get("prediction_source") == "stored before training" else
+def _check_words(v: TransferVerify, w: Words) -> str:
+    p, m = v.predicted or {}, v.measured or {}
+    where = _size(v.width, v.train_rows)
+    when = (f", stored {v.predicted_at} before it trained" if v.predicted_at
+            and v.prediction_source == "stored before training" else
             ", recomputed now (no prediction was stored before it trained)")
     if not p or (p.get("reversal_depth") is None and p.get("slope") is None):
         return (f"**Held-out check ({where}).** No prediction could be made from the smaller sizes"
-                f"{'' if not v.get('verdict') else ': ' + v['verdict']}.")
+                f"{'' if not v.verdict else ': ' + v.verdict}.")
     vp, vm = _T + "verify.predicted.", _T + "verify.measured."
     text = f"**Held-out check ({where}).** From the smaller proxy sizes alone the trend predicted "
     if p.get("reversal_depth") is not None:
@@ -62,42 +70,42 @@ def _check_words(v: dict[str, Any], w: Words) -> str:
     if m.get("depth_to_plan_for") is not None:
         text += f"; depth to plan for {w.num(vm + 'depth_to_plan_for', 'd')}"
     text += ". "
-    if v.get("inside") is True:
+    if v.inside is True:
         text += ("The measured K* lies inside the prediction interval widened by the measurement's own "
                  f"spread ({w.interval(_T + 'verify.compared_interval.reversal_depth', '.1f')}): the carry "
                  "along size held once. One check is not a guarantee.")
-    elif v.get("inside") is False:
+    elif v.inside is False:
         text += ("**The measured K* lies OUTSIDE the prediction interval**, even widened by the "
                  f"measurement's own spread ({w.interval(_T + 'verify.compared_interval.reversal_depth', '.1f')}): "
                  "the carry along size failed its one check, so do not trust a target depth carried the same way.")
     else:
-        text += f"K* is not compared ({v.get('verdict') or 'no interval on both sides'})."
-    if v.get("slope_inside") is not None:
-        text += (" The measured slope lies " + ("inside" if v["slope_inside"] else "outside")
+        text += f"K* is not compared ({v.verdict or 'no interval on both sides'})."
+    if given(v.slope_inside):
+        text += (" The measured slope lies " + ("inside" if v.slope_inside else "outside")
                  + " its widened prediction interval.")
     return text
 
 
-def _target_words(inp: ReportInputs, t: dict[str, Any], w: Words) -> str:
-    tg = t["target"]
-    where = _size(tg.get("width"), tg.get("train_rows"))
+def _target_words(inp: ReportInputs, t: Transfer, w: Words) -> str:
+    tg = t.target
+    where = _size(tg.width, tg.train_rows)
     cfg_t = getattr(inp.config, "target", None)
     if cfg_t is not None and getattr(cfg_t, "n_params", None):
         where += f", about {cfg_t.n_params:,} parameters"
-    factors = tg.get("extrapolation_factor") or {}
+    factors = tg.extrapolation_factor or {}
     far = [a for a, f in factors.items() if f > FAR_FACTOR]
     head = f"**For the target job ({where}; {_factor_words(factors)}):** "
     p = _T + "target."
-    if tg.get("depth_to_plan_for") is None:
-        return head + (f"no target depth is given. {t.get('reason') or 'The trend along size does not support one'}"
+    if not given(tg.depth_to_plan_for):
+        return head + (f"no target depth is given. {t.reason or 'The trend along size does not support one'}"
                        ". Plan from the proxy answer below only as far as the target resembles the proxies, "
                        "or sweep more proxy sizes.")
     text = head + f"plan for **{w.num(p + 'depth_to_plan_for', 'd')} hidden layers**"
-    if tg.get("depth_to_plan_for_range"):
+    if tg.depth_to_plan_for_range:
         text += f" (range {w.interval(p + 'depth_to_plan_for_range', 'd')})"
     text += (f", carried along size from the proxies: K* ≈ {w.num(p + 'reversal_depth', '.1f')}"
              f"{w.ci(p + 'reversal_depth_ci', '.1f')}")
-    if tg.get("slope") is not None:
+    if given(tg.slope):
         text += f", s = {w.num(p + 'slope')}{w.ci(p + 'slope_ci')}"
     text += " (95 % prediction intervals)."
     if far:
@@ -105,7 +113,7 @@ def _target_words(inp: ReportInputs, t: dict[str, Any], w: Words) -> str:
                  "plan; sweep larger proxies before relying on it.")
     elif any(f > SHORT_FACTOR for f in factors.values()):
         text += f" Past {SHORT_FACTOR:g}x the largest proxy the carry is long; treat the range as the answer."
-    head_size = t.get("headline_size") or {}
+    head_size = t.headline_size or {}
     text += (f" The proxy-only answer below is that of the largest proxy measured "
              f"({_size(head_size.get('width'), head_size.get('train_rows')) or 'its size'}) on its own.")
     return text
@@ -113,30 +121,32 @@ def _target_words(inp: ReportInputs, t: dict[str, Any], w: Words) -> str:
 
 def lead_blocks(inp: ReportInputs, w: Words) -> list[Block]:
     """Paragraphs that open the answer: the held-out check (first), then the target's depth."""
-    t = inp.fit.get("transfer") or {}
+    t = _transfer(inp.result)
     out: list[Block] = []
-    if t.get("verify"):
-        out.append(("p", _check_words(t["verify"], w), "caution" if t["verify"].get("inside") is False else "answer"))
-    if t.get("target"):
+    if t is None:
+        return out
+    if t.verify:
+        out.append(("p", _check_words(t.verify, w), "caution" if t.verify.inside is False else "answer"))
+    if t.target:
         out.append(("p", _target_words(inp, t, w), "answer"))
     return out
 
 
-def _size_rows(t: dict[str, Any], w: Words) -> list[list[str]]:
+def _size_rows(t: Transfer, w: Words) -> list[list[str]]:
     rows = []
-    for i, r in enumerate(t["sizes"]):
+    for i, r in enumerate(t.sizes):         # each size a plain block
         p = f"{_T}sizes.{i}."
         rows.append([_size(r.get("width"), r.get("train_rows")), "fit", str(r["n_runs"]),
                      (f"{w.num(p + 'reversal_depth', '.1f')} ({w.interval(p + 'reversal_depth_ci', '.1f')})"
                       if r.get("reversal_depth") else r["reversal_status"].replace("_", " ")),
                      f"{w.num(p + 'slope')} ({w.interval(p + 'slope_ci')})" if r.get("slope") is not None else "n/a",
                      w.num(p + "depth_to_plan_for", "d") if r.get("depth_to_plan_for") is not None else "n/a"])
-    for z in t.get("skipped_sizes") or []:
+    for z in t.skipped_sizes or []:
         rows.append([_size(z.get("width"), z.get("train_rows")), "not fitted", "", z["reason"], "", ""])
-    v = t.get("verify")
-    if v and v.get("measured"):
-        m, p = v["measured"], _T + "verify.measured."
-        rows.append([_size(v.get("width"), v.get("train_rows")), "held out", str(m["n_runs"]),
+    v = t.verify
+    if v and v.measured:
+        m, p = v.measured, _T + "verify.measured."
+        rows.append([_size(v.width, v.train_rows), "held out", str(m["n_runs"]),
                      (f"{w.num(p + 'reversal_depth', '.1f')} ({w.interval(p + 'reversal_depth_ci', '.1f')})"
                       if m.get("reversal_depth") else (m.get("reversal_status") or "none").replace("_", " ")),
                      f"{w.num(p + 'slope')} ({w.interval(p + 'slope_ci')})" if m.get("slope") is not None else "n/a",
@@ -144,10 +154,10 @@ def _size_rows(t: dict[str, Any], w: Words) -> list[list[str]]:
     return rows
 
 
-def _law_words(t: dict[str, Any], w: Words) -> str:
+def _law_words(t: Transfer, w: Words) -> str:
     parts = []
     for key, what, fmt in (("reversal_depth_law", "K* ∝", "exp"), ("slope_law", "s changes by", "lin")):
-        law = t.get(key)
+        law = getattr(t, key)
         if not law:
             continue
         for a, e in law["by_axis"].items():
@@ -157,20 +167,20 @@ def _law_words(t: dict[str, Any], w: Words) -> str:
             else:
                 parts.append(f"s changes by {w.num(p + 'exponent')}{w.ci(p + 'ci')} per unit of log "
                              f"{a.replace('_', ' ')}")
-    status = t.get("status")
+    status = t.status
     text = "The trend along size, fitted by weighted least squares on the per-size estimates: " + (
         "; ".join(parts) if parts else "not fitted") + "."
     if status == "not_supported":
-        text += f" **Transfer is not supported by these sizes** ({t.get('reason')}); no target depth is given."
-    if t.get("warning"):
-        text += f" {t['warning'][0].upper()}{t['warning'][1:]}."
+        text += f" **Transfer is not supported by these sizes** ({t.reason if given(t.reason) else None}); no target depth is given."
+    if t.warning:
+        text += f" {t.warning[0].upper()}{t.warning[1:]}."
     return text
 
 
 def section_blocks(inp: ReportInputs, w: Words) -> list[Block]:
     """The words of the section "From proxies to the target" (the figure is placed before them)."""
-    t = inp.fit.get("transfer") or {}
-    if not t or t.get("status") == "single_size":
+    t = _transfer(inp.result)
+    if t is None or t.status == "single_size":
         return []
     header = ["proxy size", "role", "runs", "K* (95 % interval)", "s (95 % interval)", "depth to plan for"]
     out: list[Block] = [("table", header, _size_rows(t, w), "numbers"), ("p", _law_words(t, w))]

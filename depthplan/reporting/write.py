@@ -26,6 +26,7 @@ from pathlib import Path
 from typing import Any, Sequence
 
 from ..errors import DataError, DepthplanError
+from ..fit_record import FitResult, given
 from ..fitting.assemble import SCHEMA, fit_path
 from ..fitting.inputs import load_runs, read_sweep_info
 from ..records import write_text_atomic
@@ -145,13 +146,16 @@ def read_inputs(path: Path, fit_file: Path, *, n_boot: int = 400) -> ReportInput
     """Load the fit (refitting when needed), the runs and the folder's side files."""
     path = Path(path)
     fit, note = ensure_fit(path, fit_file, n_boot=n_boot)
-    runs = headline_runs(fit, load_runs(path))      # with proxy sizes: the size the headline describes
+    runs = load_runs(path)
     if not path.is_dir():
-        return ReportInputs(path, "table", fit, note, runs)
-    info = read_sweep_info(path)
-    config, text = _read_config(path)
-    return ReportInputs(path, "results_folder", fit, note, runs, info, config, text,
-                        _read_tuning(path / "tuning.csv"), _read_rounds(info))
+        inp = ReportInputs(path, "table", fit, note, runs)
+    else:
+        info = read_sweep_info(path)
+        config, text = _read_config(path)
+        inp = ReportInputs(path, "results_folder", fit, note, runs, info, config, text,
+                           _read_tuning(path / "tuning.csv"), _read_rounds(info))
+    inp.runs = headline_runs(inp.result, inp.runs)   # with proxy sizes: the size the headline describes
+    return inp
 
 
 # ---------------------------------------------------------------- figures
@@ -161,7 +165,7 @@ def _dynamics_depth(inp: ReportInputs) -> int | None:
     probed = sorted({r.depth for r in inp.primary_runs if r.probe_steps and r.displacement})
     if not probed:
         return None
-    target = inp.fit["planning"].get("recommended_depth") or probed[-1]
+    target = inp.result.planning.recommended_depth or probed[-1]
     return min(probed, key=lambda k: (abs(math.log(k / target)), -k))
 
 
@@ -173,7 +177,7 @@ _Drawn = tuple[Any, str, str, str, str]   # (Figure, name, title, caption, alt t
 
 
 def _scaling_figure(inp: ReportInputs) -> _Drawn:
-    fit = inp.fit
+    fit = inp.result
     fig, (ax,) = F.new_figure(7.2, 5.4)
     F.plot_scaling(fit, inp.runs, ax)
     F.shared_legend(fig, [ax], ncol=2)
@@ -193,22 +197,22 @@ def _scaling_figure(inp: ReportInputs) -> _Drawn:
 
 
 def _rates_figure(inp: ReportInputs) -> _Drawn | None:
-    groups = F.fitted_groups(inp.fit)
+    groups = F.fitted_groups(inp.result)
     if len(groups) < 2:
         return None
-    fixed = [g for g in groups if g["group"].get("lr_mode") == "fixed"]
+    fixed = [g for g in groups if g.group.lr_mode == "fixed"]
     n = len(groups) + bool(fixed)
     n_cols = 2 if n > 2 else n
     n_rows = math.ceil(n / n_cols)
     fig, axes = F.new_figure(7.4, 3.2 * n_rows + 0.8, n_cols, n_rows)
     for ax, g in zip(axes, groups):
         F.plot_scaling(g, inp.runs, ax, groups=[g], numbers_in_legend=False)
-        pl = g["power_law"]
-        ax.set_title(f"{F.group_label(g['group'])}\ns = {pl['slope']:.2f}"
-                     + (f", α = {pl['alpha']:.2f}" if pl.get("alpha") is not None else "")
-                     + (f", K* = {g['reversal']['depth']:.1f}" if g["reversal"]["depth"] else ""))
+        pl = g.power_law
+        ax.set_title(f"{F.group_label(g.group)}\ns = {pl.slope:.2f}"
+                     + (f", α = {pl.alpha:.2f}" if given(pl.alpha) else "")
+                     + (f", K* = {g.reversal.depth:.1f}" if g.reversal.depth else ""))
     if fixed:
-        TF.plot_rate_product(inp.fit, inp.runs, axes[n - 1])
+        TF.plot_rate_product(inp.result, inp.runs, axes[n - 1])
     for ax in axes[n:]:
         ax.set_visible(False)
     F.shared_legend(fig, axes[:n])
@@ -224,16 +228,16 @@ def _cost_figure(inp: ReportInputs) -> _Drawn | None:
     if not TF.has_timings(inp.primary_runs):
         return None
     fig, axes = F.new_figure(7.6, 4.4, 2)
-    TF.plot_seconds_per_update(inp.fit, inp.primary_runs, axes[0])
-    TF.plot_total_cost(inp.fit, inp.primary_runs, axes[1])
+    TF.plot_seconds_per_update(inp.result, inp.primary_runs, axes[0])
+    TF.plot_total_cost(inp.result, inp.primary_runs, axes[1])
     F.shared_legend(fig, axes)
     return (fig, "cost", "Cost per depth",
-            _cost_caption(inp.fit),
+            _cost_caption(inp.result),
             "Seconds per update and total compute to convergence against depth.")
 
 
-def _cost_caption(fit: dict[str, Any]) -> str:
-    if fit["planning"].get("cost_basis") == "flops":
+def _cost_caption(fit: FitResult) -> str:
+    if fit.planning.cost_basis == "flops":
         return ("Left: measured wall-clock milliseconds per SGD update for each run, on this sweep's "
                 "machine (shown, not used: it includes this machine's fixed overhead per update). "
                 "Right: compute to converge for each run (updates × the analytic FLOP count of one "
@@ -263,8 +267,8 @@ def _dynamics_figure(inp: ReportInputs) -> _Drawn | None:
         return None
     main = inp.primary_runs
     fig, axes = F.new_figure(8.6, 4.2, 2)
-    TF.plot_displacement(inp.fit, main, axes[0], depth=depth)
-    TF.plot_snr(inp.fit, main, axes[1], depth=depth)
+    TF.plot_displacement(inp.result, main, axes[0], depth=depth)
+    TF.plot_snr(inp.result, main, axes[1], depth=depth)
     TF.layer_colourbar(fig, axes, min(len(r.displacement) for r in main
                                       if r.depth == depth and r.displacement))
     F.shared_legend(fig, axes)
@@ -275,16 +279,16 @@ def _dynamics_figure(inp: ReportInputs) -> _Drawn | None:
             "the square-root law of a random walk). Right: gradient signal-to-noise ratio in "
             "decibels, 10·log10((‖ḡ‖² − S/n)/S) over n minibatch gradients (ḡ their mean, S the "
             "unbiased estimate of the noise's total variance); a gap is a step below the floor of "
-            "the window. " + dynamics_words(Words(inp.fit)),
+            "the window. " + dynamics_words(inp.result, Words(inp.fit)),
             "Weight displacement and gradient SNR per layer against updates.")
 
 
 def _depth_dynamics_figure(inp: ReportInputs) -> _Drawn | None:
-    if not TF.has_depth_dynamics(inp.fit):
+    if not TF.has_depth_dynamics(inp.result):
         return None
     fig, axes = F.new_figure(8.6, 4.0, 2)
-    TF.plot_snr_drop_by_depth(inp.fit, axes[0])
-    TF.plot_late_exponent_by_depth(inp.fit, axes[1])
+    TF.plot_snr_drop_by_depth(inp.result, axes[0])
+    TF.plot_late_exponent_by_depth(inp.result, axes[1])
     F.shared_legend(fig, axes)
     return (fig, "dynamics-by-depth", "Training dynamics against depth",
             "Per depth, the median over layers and seeds of the probe measures, with bars over the "
@@ -295,7 +299,7 @@ def _depth_dynamics_figure(inp: ReportInputs) -> _Drawn | None:
             "over the last half of each run (steps T/2 to T; after the transition in files written "
             "before that measure existed), against the guides 1 (drift) and 1/2 (diffusion) and "
             "α from the depth law with its 95 % interval. "
-            + (inp.fit.get("diffusion") or {}).get("no_drop_note", ""),
+            + ((inp.result.diffusion.no_drop_note or "") if inp.result.diffusion else ""),
             "SNR drop and late displacement exponent against the number of hidden layers.")
 
 
@@ -335,11 +339,11 @@ def _tuning_figure(inp: ReportInputs) -> _Drawn | None:
 
 
 def _transfer_figure(inp: ReportInputs) -> _Drawn | None:
-    if not XF.has_transfer_figure(inp.fit):
+    if not XF.has_transfer_figure(inp.result):
         return None
     fig, axes = F.new_figure(8.6, 4.3, 2)
     for ax, quantity in zip(axes, ("reversal_depth", "slope")):
-        XF.plot_transfer_panel(inp.fit, ax, quantity)
+        XF.plot_transfer_panel(inp.result, ax, quantity)
         if ax.get_legend() is not None:
             ax.get_legend().remove()
     F.shared_legend(fig, axes, ncol=2)
@@ -390,7 +394,7 @@ def build_blocks(inp: ReportInputs, figs: list[FigureFile]) -> list[Block]:
     if transfer:
         section("From proxies to the target", "transfer", "transfer")
         blocks += transfer
-    if "rates" in by_name or inp.fit.get("lr_interaction"):
+    if "rates" in by_name or inp.result.lr_interaction:
         section("Learning rate and depth", "rates", "rates")
         blocks += rate_blocks(inp, w)
     if inp.tuning:
@@ -410,7 +414,7 @@ def build_blocks(inp: ReportInputs, figs: list[FigureFile]) -> list[Block]:
 
 
 def _title(inp: ReportInputs) -> str:
-    name = inp.info.get("name") or inp.fit.get("input", {}).get("sweep_name") or inp.path.stem
+    name = inp.info.get("name") or (inp.result.input and inp.result.input.sweep_name) or inp.path.stem
     return f"Depth plan: {name}"
 
 

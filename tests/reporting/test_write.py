@@ -28,6 +28,7 @@ import pytest
 from matplotlib.figure import Figure
 
 from depthplan.cli import main
+from depthplan.fit_record import FitGroup
 from depthplan.reporting.figures import plot_scaling
 from depthplan.records import RunResult, write_runs_csv
 from depthplan.reporting.write import ensure_fit, write_report
@@ -372,6 +373,7 @@ def test_scaling_plot_draws_censored_and_diverged_runs_as_such(rates_report):
     from depthplan.fitting.inputs import load_runs
     runs = load_runs(folder)
     ax = Figure().subplots()
+    group = FitGroup.from_dict(group)
     drawn = {a.get_label(): a for a in plot_scaling(group, runs, ax, groups=[group])}
     at = [r for r in runs if r.lr_mode == "fixed" and r.learning_rate == 0.02]
     n_cens = sum(r.status == "censored" for r in at)
