@@ -127,48 +127,9 @@ def _fit_group(runs: list[RunResult], *, save_fraction: float, n_boot: int, seed
     """The full fit of one learning-rate group (everything but the rate comparison); `cost`
     is {basis, network, seconds_are_proxy} for the compute-optimal depth (`network` None: the
     group's runs' own record, `cost.network_of`)."""
-    name = source or "the runs"
-    stuck = find_stuck(runs)
-    per_depth = summarize_depths(runs, stuck)
-    swept = [row["depth"] for row in per_depth]
-    if len(swept) < 3:
-        raise DataError(f"{name}: runs at {len(swept)} depth{'s' * (len(swept) != 1)} "
-                        f"({', '.join(map(str, swept))}); a depth law needs at least three")
-    stuck_ids = {id(r) for r in stuck}
-    used = [r for r in runs if r.status in ("converged", "censored") and id(r) not in stuck_ids]
-    d = _Arrays(np.array([r.depth for r in used], float),
-                np.array([r.iterations for r in used], float),
-                np.array([r.status == "censored" for r in used], bool))
-    depths = sorted({int(k) for k in d.K})
-    if len(depths) < 3:
-        raise DataError(f"{name}: only {len(depths)} depths have runs that did not diverge; "
-                        "a depth law needs at least three (lower the learning rate)")
-    if len({r.depth for r in used if r.status == "converged"}) < 2:
-        raise DataError(f"{name}: runs converged at fewer than two depths; raise the budget "
-                        "(max_updates) so that the fit has values, not only lower bounds")
-    rev, seg_draws = _reversal_block(d, depths, n_boot, seed)
-    if rev["candidate"]:
-        span = [k for k in depths if k <= rev["breakpoint"]]
-    else:
-        loc = _location(d, depths)
-        span = [k for k in depths if k <= depths[int(np.argmin(loc))]]
-        span = span if len(span) >= 3 else depths
-    pl, pl_draws = _power_law_block(d.subset(d.K <= span[-1]), n_boot, seed + 2)
-    pl = _with_alpha(pl)
-    if len(span) >= 3:
-        pl["without_shallowest"], _ = _power_law_block(
-            d.subset((d.K > span[0]) & (d.K <= span[-1])), n_boot, seed + 3)
-        _with_alpha(pl["without_shallowest"])
-    else:
-        pl["without_shallowest"] = None
-    gain = _gain(pl)
-    status = (ReversalStatus.NONE if not gain else ReversalStatus.OBSERVED if rev["candidate"]
-              else ReversalStatus.BEYOND_RANGE).value
-    reversal = _reversal_fields(rev, status, d, depths, seg_draws)
+    stuck, per_depth, d, depths = _usable_runs(runs, source or "the runs")
+    span, pl, gain, status, reversal, sel = _law_and_reversal(d, depths, n_boot, seed)
     k_lo, k_hi = (depths[0], depths[-1]) if status == "observed" else (span[0], span[-1])
-    sel = _select_models(d.subset(d.K <= k_hi), status == "observed", n_boot, seed)
-    if status == "observed":
-        _reversal_from_models(reversal, sel)
     rise_after = span[-1] if reversal["rise_suspected"] else None
     cost = dict(cost or {})
     cost["network"] = network_of(runs) or cost.get("network")
@@ -200,6 +161,57 @@ def _fit_group(runs: list[RunResult], *, save_fraction: float, n_boot: int, seed
     # the accuracy guard first (it can overturn the depth), then what the data leave unsettled
     fit["warnings"] = _accuracy_warnings(fit) + _model_warnings(fit) + _group_warnings(fit, d, eval_every)
     return fit
+
+
+def _usable_runs(runs: list[RunResult], name: str) -> tuple[list[RunResult], list[dict[str, Any]], _Arrays, list[int]]:
+    """Stuck runs, the per-depth table and the arrays the law is fitted on; DataError when too thin."""
+    stuck = find_stuck(runs)
+    per_depth = summarize_depths(runs, stuck)
+    swept = [row["depth"] for row in per_depth]
+    if len(swept) < 3:
+        raise DataError(f"{name}: runs at {len(swept)} depth{'s' * (len(swept) != 1)} "
+                        f"({', '.join(map(str, swept))}); a depth law needs at least three")
+    stuck_ids = {id(r) for r in stuck}
+    used = [r for r in runs if r.status in ("converged", "censored") and id(r) not in stuck_ids]
+    d = _Arrays(np.array([r.depth for r in used], float),
+                np.array([r.iterations for r in used], float),
+                np.array([r.status == "censored" for r in used], bool))
+    depths = sorted({int(k) for k in d.K})
+    if len(depths) < 3:
+        raise DataError(f"{name}: only {len(depths)} depths have runs that did not diverge; "
+                        "a depth law needs at least three (lower the learning rate)")
+    if len({r.depth for r in used if r.status == "converged"}) < 2:
+        raise DataError(f"{name}: runs converged at fewer than two depths; raise the budget "
+                        "(max_updates) so that the fit has values, not only lower bounds")
+    return stuck, per_depth, d, depths
+
+
+def _law_and_reversal(d: _Arrays, depths: list[int], n_boot: int, seed: int) -> tuple[Any, ...]:
+    """The descending span, its power law, depth gain, the reversal verdict and the model selection."""
+    rev, seg_draws = _reversal_block(d, depths, n_boot, seed)
+    if rev["candidate"]:
+        span = [k for k in depths if k <= rev["breakpoint"]]
+    else:
+        loc = _location(d, depths)
+        span = [k for k in depths if k <= depths[int(np.argmin(loc))]]
+        span = span if len(span) >= 3 else depths
+    pl, _ = _power_law_block(d.subset(d.K <= span[-1]), n_boot, seed + 2)
+    pl = _with_alpha(pl)
+    if len(span) >= 3:
+        pl["without_shallowest"], _ = _power_law_block(
+            d.subset((d.K > span[0]) & (d.K <= span[-1])), n_boot, seed + 3)
+        _with_alpha(pl["without_shallowest"])
+    else:
+        pl["without_shallowest"] = None
+    gain = _gain(pl)
+    status = (ReversalStatus.NONE if not gain else ReversalStatus.OBSERVED if rev["candidate"]
+              else ReversalStatus.BEYOND_RANGE).value
+    reversal = _reversal_fields(rev, status, d, depths, seg_draws)
+    k_hi = depths[-1] if status == "observed" else span[-1]
+    sel = _select_models(d.subset(d.K <= k_hi), status == "observed", n_boot, seed)
+    if status == "observed":
+        _reversal_from_models(reversal, sel)
+    return span, pl, gain, status, reversal, sel
 
 
 def _select_models(d: _Arrays, rising: bool, n_boot: int, seed: int) -> dict[str, Any]:

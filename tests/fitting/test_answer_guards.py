@@ -13,6 +13,7 @@ import pytest
 
 from depthplan import fitting as F
 from depthplan.fitting.accuracy import accuracy_fields
+from depthplan.fit_record import FitGroup
 from depthplan.fitting.rates import rate_effect_words
 from depthplan.records import RunResult
 from depthplan.reporting.tables import _rate_product_words
@@ -98,7 +99,7 @@ def test_rate_interaction_direction_and_its_words(slope, direction, words, wrong
     said = rate_effect_words(effect)
     assert words in said and wrong not in said
     assert {"falling": "falls", "flat": "stays about level", "rising": "rises"}[direction] in said
-    assert words in _rate_product_words(fit)           # the report's sentence says the same
+    assert words in _rate_product_words(FitGroup.from_dict(fit))   # the report's sentence says the same
     # with a tuned group beside it, the interaction message says it too and the tuned rate heads
     both = _runs(slope) + _runs(-0.3, lr_mode="tuned", lr=0.2, seed=2)
     mixed = F.fit_runs(both, n_boot=60)
