@@ -381,14 +381,9 @@ def _largest(sizes: dict[tuple[int, int], list[RunResult]]) -> tuple[int, int]:
     return max(sizes, key=lambda s: (max(s[0], 1) * max(s[1], 1), len(sizes[s])))
 
 
-def _transfer(sizes: dict[tuple[int, int], list[RunResult]], target: dict[str, Any] | None,
-              kw: dict[str, Any], source: str, holdout: dict[str, Any] | None = None) -> dict[str, Any]:
-    """Per-size fits of each size's primary rate curve, then the trend along size (fitting.transfer).
-
-    A size that `holdout` names stays out of the trend; it is fitted on its own and compared with
-    the trend's prediction for it (`transfer.verify`, fitting.carry).
-    """
-    held = held_out_size(list(sizes), holdout)
+def _size_fits(sizes: dict[tuple[int, int], list[RunResult]], kw: dict[str, Any],
+               source: str) -> tuple[dict[tuple[int, int], dict[str, Any]], dict[tuple[int, int], str]]:
+    """Each size's fit of its primary rate curve, and the reason for every size that cannot be fitted."""
     fits, skipped = {}, {}
     for size, rs in sizes.items():
         groups = group_runs(rs)
@@ -396,6 +391,19 @@ def _transfer(sizes: dict[tuple[int, int], list[RunResult]], target: dict[str, A
             fits[size] = _fit_group(groups[primary_group(groups)], source=f"{source or 'input'} (size {size})", **kw)
         except DataError as exc:
             skipped[size] = str(exc)
+    return fits, skipped
+
+
+def _transfer(size_fits: dict[tuple[int, int], dict[str, Any]], skipped: dict[tuple[int, int], str],
+              target: dict[str, Any] | None, kw: dict[str, Any],
+              holdout: dict[str, Any] | None = None) -> dict[str, Any]:
+    """The trend along size of the per-size fits (fitting.transfer).
+
+    A size that `holdout` names stays out of the trend; it is fitted on its own and compared with
+    the trend's prediction for it (`transfer.verify`, fitting.carry).
+    """
+    held = held_out_size(list(size_fits) + list(skipped), holdout)
+    fits, skipped = dict(size_fits), dict(skipped)
     held_fit = skipped.get(held) or fits.get(held)
     fits.pop(held, None)
     skipped.pop(held, None)
@@ -475,13 +483,15 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
     _check_target(target, sizes)
     kw = dict(save_fraction=save_fraction, n_boot=n_boot, seed=seed, eval_every=eval_every,
               cost={"basis": cost, "network": network, "seconds_are_proxy": seconds_are_proxy})
-    transfer = None
+    transfer, size_fits, biggest = None, {}, _largest(sizes)
     if len(sizes) > 1:          # the headline describes the largest proxy; the trend goes in `transfer`
-        transfer = _transfer(sizes, target, kw, source, holdout)
-    groups = group_runs(sizes[_largest(sizes)] if transfer is not None else known)
+        size_fits, skipped = _size_fits(sizes, kw, source)
+        transfer = _transfer(size_fits, skipped, target, kw, holdout)
+    groups = group_runs(sizes[biggest] if transfer is not None else known)
     primary = primary_group(groups)
+    # the largest proxy's primary curve was fitted with the sizes (same runs, same options)
     main = {"group": _group_label(primary, groups[primary]),
-            **_fit_group(groups[primary], source=source, **kw)}
+            **(size_fits.get(biggest) or _fit_group(groups[primary], source=source, **kw))}
     by_rate, interaction = [], None
     if len(groups) > 1:
         by_rate = _fit_by_rate(groups, primary, main, source, kw)
@@ -495,7 +505,6 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
     if interaction:
         notes.append(interaction["message"])
     if transfer is not None:
-        biggest = _largest(sizes)
         notes.insert(0, f"runs at {len(sizes)} proxy sizes: the figures above are the largest proxy's "
                         f"(width {biggest[0] or 'not recorded'}, {biggest[1] or 'all'} training rows); "
                         "`transfer` carries the law along size")
@@ -509,7 +518,7 @@ def fit_runs(runs: list[RunResult], *, save_fraction: float = 0.05, n_boot: int 
     result = {"schema": SCHEMA, "source": source, **main, "by_learning_rate": by_rate,
               "lr_interaction": interaction, "warnings": notes}
     if transfer is not None:
-        transfer["headline_size"] = {"width": _largest(sizes)[0] or None, "train_rows": _largest(sizes)[1] or None}
+        transfer["headline_size"] = {"width": biggest[0] or None, "train_rows": biggest[1] or None}
         result["transfer"] = transfer
     return _clean(result)
 
