@@ -78,15 +78,15 @@ def _draw_check(ax: Axes, t: Transfer, axis: str, quantity: str, name: str) -> l
     if not x:
         return []
     out: list[Artist] = []
-    p, m = v.predicted or {}, v.measured or {}
-    if p.get(quantity) is not None:
-        out.append(ax.errorbar([x / 1.04], [p[quantity]], yerr=_yerr(p[quantity], p.get(f"{quantity}_ci")),
-                               fmt="D", ms=6, mfc="white", mec=F.VERMILLION, mew=1.4, ecolor=F.VERMILLION,
-                               capsize=3, zorder=6, label="held-out size: predicted before it trained"))
-    if m.get(quantity) is not None:
-        out.append(ax.errorbar([x * 1.04], [m[quantity]], yerr=_yerr(m[quantity], m.get(f"{quantity}_ci")),
-                               fmt="D", ms=6, mfc=F.VERMILLION, mec="black", mew=0.8, ecolor="black",
-                               capsize=3, zorder=6, label="held-out size: measured"))
+    # predicted just left of the size, measured just right of it
+    for block, shift, face, edge, mew, label in (
+            (v.predicted, 1 / 1.04, "white", F.VERMILLION, 1.4, "held-out size: predicted before it trained"),
+            (v.measured, 1.04, F.VERMILLION, "black", 0.8, "held-out size: measured")):
+        value = (block or {}).get(quantity)
+        if value is not None:
+            out.append(ax.errorbar([x * shift], [value], yerr=_yerr(value, block.get(f"{quantity}_ci")),
+                                   fmt="D", ms=6, mfc=face, mec=edge, mew=mew, ecolor=edge,
+                                   capsize=3, zorder=6, label=label))
     return out
 
 
