@@ -106,8 +106,18 @@ def _depth_list(depths: Sequence[int]) -> str:
     return f"depth{'s' * (len(depths) != 1)} {', '.join(map(str, depths))}"
 
 
+UNSETTLED = "the answer is not pinned down: "
+
+
 def _unresolved(plan: dict[str, Any]) -> str:
     """One sentence when the answer is not pinned down by the swept depths or the models, else ""."""
+    reasons = _unsettled_reasons(plan)
+    return UNSETTLED + reasons if reasons else ""
+
+
+def _unsettled_reasons(plan: dict[str, Any]) -> str:
+    """Why the answer is not pinned down (gaps, disagreeing models), the range and the depths to sweep
+    next; "" when it is pinned down."""
     parts = [f"the {g['figure']} ({g['value']:.3g}) lies between the swept depths "
              f"{g['between'][0]} and {g['between'][1]}, where nothing was swept"
              for g in plan.get("gaps") or []]
@@ -116,7 +126,7 @@ def _unresolved(plan: dict[str, Any]) -> str:
               + ")" for m in plan.get("models_disagree") or []]
     if not parts:
         return ""
-    text = "the answer is not pinned down: " + "; ".join(parts)
+    text = "; ".join(parts)
     rng = plan.get("recommended_range")
     if rng:
         text += f"; plan for a depth between {rng[0]} and {rng[1]}"
@@ -182,9 +192,9 @@ def headline_lines(fit: FitResult | dict[str, Any]) -> list[str]:
     r = fit if isinstance(fit, FitResult) else FitResult.from_dict(fit)
     plan = r.planning
     lines = []
-    unresolved = _unresolved(plan.to_dict())
-    if unresolved:
-        lines.append(f"Not settled: {unresolved[len('the answer is not pinned down: '):]}.")
+    reasons = _unsettled_reasons(plan.to_dict())
+    if reasons:
+        lines.append(f"Not settled: {reasons}.")
     if plan.recommended_depth is not None:
         rng = plan.recommended_range
         lines.append(f"Recommended depth: {_plural(plan.recommended_depth, 'layer')}"
