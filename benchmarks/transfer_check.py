@@ -1,9 +1,9 @@
-"""Predict, then verify, on the transfer demo: how well three proxy widths predict a fourth.
+"""Predict, then verify, on the demo: how well three proxy widths predict a fourth.
 
-    python benchmarks/transfer_check.py                 # the transfer demo sweep, 2 workers
+    python benchmarks/transfer_check.py                 # the demo sweep, 2 workers
     python benchmarks/transfer_check.py --out DIR       # keep (and resume) the sweep in DIR
 
-Runs `configs/demo-transfer.yaml` (our synthetic scenario at widths 16, 24, 32; width 64 held out;
+Runs the demo sweep `configs/demo.yaml` (our synthetic scenario at widths 16, 24, 32; width 64 held out;
 target width 128) with `run_sweep`, so the prediction for width 64 is stored before width 64
 trains; then fits the folder as `depthplan fit` does and prints, for the held-out width, the
 prediction (with when it was stored) against the measurement: K*, s and the depth to plan for, and
@@ -44,7 +44,7 @@ def main() -> int:
     from depthplan.fitting import fit_path
     from depthplan.sweep.run import run_sweep
 
-    cfg = load_config(ROOT / "configs" / "demo-transfer.yaml")
+    cfg = load_config(ROOT / "configs" / "demo.yaml")
     out = Path(args.out) if args.out else Path(tempfile.mkdtemp(prefix="depthplan-transfer-"))
     t0, c0 = time.perf_counter(), _cpu_seconds()
     summary = run_sweep(cfg, out=out, workers=args.workers, show_progress=False)

@@ -17,7 +17,6 @@ from .errors import ConfigError, DepthplanError, RunFailed
 log = logging.getLogger("depthplan")
 
 DEMO_CONFIG = Path(__file__).resolve().parent.parent / "configs" / "demo.yaml"
-DEMO_TRANSFER_CONFIG = DEMO_CONFIG.with_name("demo-transfer.yaml")
 
 
 class _Parser(argparse.ArgumentParser):
@@ -203,7 +202,7 @@ def _cmd_report(args: argparse.Namespace) -> int:
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
-    config = DEMO_TRANSFER_CONFIG if getattr(args, "transfer", False) else DEMO_CONFIG
+    config = DEMO_CONFIG
     if not config.is_file():
         raise ConfigError(f"the demo sweep {config} is missing; run from a checkout of depthplan")
     from .reporting.write import write_report
@@ -212,14 +211,22 @@ def _cmd_demo(args: argparse.Namespace) -> int:
 
     from .config import load_config
     from .sweep.run import output_folder
+    from .sweep.sample import keep_unchanged, restore_reproduced_runs, snapshot
 
     target = output_folder(load_config(config), args.out)
-    if (target / "runs.csv").is_file() and not (target / "store.db").exists():
+    sample = snapshot(target) if (target / "runs.csv").is_file() else {}
+    if sample and not (target / "store.db").exists():
         # a fresh checkout: the committed sample ships without its store, so the demo trains it again
         print(f"{target} holds the committed demo results without their store; training the demo again")
         args.over_sample = True
     folder = _train_sweep(config, args)
+    reproduced = restore_reproduced_runs(folder, sample)
     paths = write_report(folder, None)
+    if sample:
+        kept = keep_unchanged(folder, sample)
+        print(f"the runs {'reproduce' if reproduced else 'differ from'} the ones {folder} held"
+              + (" (apart from their timings)" if reproduced else "")
+              + (f"; {len(kept)} files that changed only in dates or the checkout's path keep their bytes" if kept else ""))
     print(f"demo report: {paths['html']}")
     _print_plan(json.loads(Path(paths["fit"]).read_text(encoding="utf-8")), folder)
     return 0
@@ -315,9 +322,6 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--out", metavar="DIR", help="report folder (default: PATH's folder)")
     sp = add("demo", _cmd_demo, "train, fit and report the built-in demo sweep")
     train_opts(sp)
-    sp.add_argument("--transfer", action="store_true",
-                    help="the transfer demo instead: three proxy widths, a held-out width predicted before it "
-                         "trains, a target width (configs/demo-transfer.yaml)")
     sp = add("worker", _cmd_worker, "claim and train cells of a sweep planned in a shared store")
     sp.add_argument("--storage", metavar="URL", help="storage URL (default: $DEPTHPLAN_STORAGE)")
     sp.add_argument("--study", required=True, metavar="NAME", help="the sweep's name")

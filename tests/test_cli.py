@@ -147,6 +147,26 @@ def test_demo_trains_over_a_committed_sample_that_has_no_store(write_yaml, tmp_p
     assert "holds the committed demo results without their store; training the demo again" in printed
     assert "cells trained now" in printed and (out / "store.db").is_file() and (out / "report.html").is_file()
 
+    # Trained again over its own sample, the demo reproduces it, and a clean checkout stays clean:
+    # every file that changed only in timings, dates or paths keeps its committed bytes.
+    from depthplan.sweep.sample import snapshot
+
+    committed = snapshot(out)
+    assert {"runs.csv", "runs.jsonl", "fit.json", "report.md", "report.html"} <= set(committed)
+    (out / "store.db").unlink()
+    assert cli.main(["demo", "--out", str(out), "-q", "--workers", "1"]) == 0
+    printed = capsys.readouterr().out
+    assert f"the runs reproduce the ones {out} held (apart from their timings)" in printed
+    assert snapshot(out) == committed
+    # A sample whose runs differ (one run's T edited) is news: the exports are rewritten from the store.
+    runs = (out / "runs.csv").read_text(encoding="utf-8").splitlines()
+    header, first = runs[0].split(","), runs[1].split(",")
+    first[header.index("iterations")] = "1"
+    (out / "runs.csv").write_text("\n".join([runs[0], ",".join(first), *runs[2:]]) + "\n", encoding="utf-8")
+    assert cli.main(["demo", "--out", str(out), "-q", "--workers", "1"]) == 0
+    assert f"the runs differ from the ones {out} held" in capsys.readouterr().out
+    assert (out / "runs.csv").read_text(encoding="utf-8").splitlines()[1].split(",")[header.index("iterations")] != "1"
+
 
 # --------------------------------------------------------------------------- model families
 
