@@ -385,8 +385,12 @@ class TransferTarget(Record):
     alpha: float | None = _absent()
     alpha_ci: list[float] | None = _absent()
     last_depth_worth_adding: int | None = _absent()
+    plan_basis: str | None = _absent()
     depth_to_plan_for: int | None = _absent()
     depth_to_plan_for_range: list[int] | None = _absent()
+    deepest_swept_depth: int | None = _absent()
+    past_swept_depths: bool = _absent()
+    plan_settled: bool = _absent()
     notes: list[str] = _absent()
 
 
@@ -416,6 +420,7 @@ class Transfer(Record):
     skipped_sizes: list[dict[str, Any]] = _absent()
     reversal_depth_law: dict[str, Any] | None = _absent()
     slope_law: dict[str, Any] | None = _absent()
+    plan_depth_law: dict[str, Any] | None = _absent()
     target: TransferTarget | None = _absent()
     warning: str = _absent()
     verify: TransferVerify | None = _absent()

@@ -58,8 +58,8 @@ def _inside_lin(measured: float | None, measured_ci: Any, predicted: float | Non
     return bool(lo <= measured <= hi), [lo, hi]
 
 
-_PREDICTED = ("reversal_depth", "reversal_depth_ci", "slope", "slope_ci", "depth_to_plan_for",
-              "depth_to_plan_for_range", "extrapolation_factor")
+_PREDICTED = ("reversal_depth", "reversal_depth_ci", "slope", "slope_ci",
+              "depth_to_plan_for", "depth_to_plan_for_range", "plan_basis", "extrapolation_factor")
 
 
 def verify_block(size_fits: dict[Size, dict[str, Any]], held: Size, held_fit: dict[str, Any] | str, *,
@@ -148,7 +148,7 @@ def trend_curve(block: dict[str, Any], points: Sequence[dict[str, Any]], *, n_bo
         mid, lo, hi = [], [], []
         for v in x:
             point = {**largest, axis: v}
-            m, ci = trend.predict(_x(point, axes))
+            m, ci, _ = trend.predict(_x(point, axes))
             f = math.exp if log else float
             mid.append(f(m))
             lo.append(f(ci[0]))

@@ -193,13 +193,20 @@ def headline_lines(fit: FitResult | dict[str, Any]) -> list[str]:
     plan = r.planning
     lines = []
     reasons = _unsettled_reasons(plan.to_dict())
+    t = r.transfer
+    if t and t.target:
+        lines.append(target_line(t.target))
+    if t and t.verify and t.verify.verdict:
+        lines.append(f"Held-out check: {t.verify.verdict}.")
     if reasons:
         lines.append(f"Not settled: {reasons}.")
+    head = (t.headline_size or {}) if t else {}
+    proxy = f"largest proxy, {_size_words(head.get('width'), head.get('train_rows'))}; " if head else ""
     if plan.recommended_depth is not None:
         rng = plan.recommended_range
         lines.append(f"Recommended depth: {_plural(plan.recommended_depth, 'layer')}"
                      + (" [extrapolated]" if plan.recommended_extrapolated else "")
-                     + f" (from the {plan.recommended_basis})"
+                     + f" ({proxy}from the {plan.recommended_basis})"
                      + (f"; the data allow {rng[0]} to {rng[1]}" if rng else _recommended_range(plan)) + ".")
     else:
         lines.append(f"No depth to plan for could be derived ({plan.recommended_basis}).")
@@ -344,21 +351,25 @@ def _transfer_lines(t: Transfer | None) -> list[str]:
             f"{a}^{e['exponent']:.2f}{_ci_text(e['ci'])}" for a, e in law["by_axis"].items()) + ".")
     if t.status != "supported":
         lines.append(f"Transfer to a bigger job: not supported by the data ({t.reason}).")
-    tg = t.target
-    if tg:
-        where = _size_words(tg.width, tg.train_rows)
-        factor = ", ".join(f"{v:.1f}x the largest proxy's {a}" + (" [a guess, past 8x]" if v > 8 else "")
-                           for a, v in tg.extrapolation_factor.items())
-        if tg.depth_to_plan_for is not None:
-            span = tg.depth_to_plan_for_range
-            lines.append(f"Target ({where}; {factor}): plan for {_plural(tg.depth_to_plan_for, 'layer')}"
-                         + (f" (range {span[0]} to {span[1]})" if span else "")
-                         + f"; K* {tg.reversal_depth:.1f}{_ci_text(tg.reversal_depth_ci, '.1f')}"
-                         + (f", s {tg.slope:.2f}{_ci_text(tg.slope_ci)}" if tg.slope is not None else "") + ".")
-        else:
-            lines.append(f"Target ({where}; {factor}): no target depth"
-                         + (f"; s {tg.slope:.2f}{_ci_text(tg.slope_ci)}" if tg.slope is not None else "") + ".")
-    return lines
+    return lines          # the target's line leads the summary (`headline_lines`)
+
+
+def target_line(tg: Any) -> str:
+    """'Target (width 128; 4.0x ...): plan for N layers (range a to b) ...; K* ...': one line."""
+    where = _size_words(tg.width, tg.train_rows)
+    factor = ", ".join(f"{v:.1f}x the largest proxy's {a}" + (" [a guess, past 8x]" if v > 8 else "")
+                       for a, v in tg.extrapolation_factor.items())
+    slope = f", s {tg.slope:.2f}{_ci_text(tg.slope_ci)}" if tg.slope is not None else ""
+    if tg.depth_to_plan_for is None:
+        return f"Target ({where}; {factor}): no target depth{slope}."
+    span = tg.depth_to_plan_for_range
+    if tg.plan_settled is False and span:
+        plan = f"no single depth: the data allow {span[0]} to {span[1]} layers"
+    else:
+        plan = f"plan for {_plural(tg.depth_to_plan_for, 'layer')}" + (f" (range {span[0]} to {span[1]})" if span else "")
+    past = (f" [past the deepest swept depth, {tg.deepest_swept_depth}]" if tg.past_swept_depths else "")
+    return (f"Target ({where}; {factor}): {plan}; K* {tg.reversal_depth:.1f}"
+            f"{_ci_text(tg.reversal_depth_ci, '.1f')}{past}{slope}.")
 
 
 #: How each verdict of the late-window check reads (fit.json `diffusion.late_window.verdict`).

@@ -66,7 +66,20 @@ def _size_row(size: tuple[int, int], fit: dict[str, Any]) -> dict[str, Any]:
             "reversal_depth": rev["depth"] if observed else None,
             "reversal_depth_ci": rev.get("depth_ci") if observed else None,
             "slope": pl["slope"], "slope_ci": pl["slope_ci"],
-            "depth_to_plan_for": plan["recommended_depth"]}
+            "depth_to_plan_for": plan["recommended_depth"], "depth_to_plan_for_ci": _plan_ci(plan),
+            "plan_basis": plan["recommended_basis"]}
+
+
+def _plan_ci(plan: dict[str, Any]) -> list[float] | None:
+    """The bootstrap interval of the figure a size's depth to plan for comes from, widened by half a
+    layer each side (depths are whole numbers, so [9, 9] means "9, to the nearest layer")."""
+    basis = plan.get("recommended_basis") or ""
+    fig = (plan.get("compute_optimal_depth") if basis.startswith("compute-optimal") else
+           plan.get("last_depth_worth_adding") if basis.startswith("last depth") else None) or {}
+    ci = fig.get("ci")
+    if not ci or fig.get("depth") != plan.get("recommended_depth") or None in ci:
+        return None
+    return [max(0.5, ci[0] - 0.5), ci[1] + 0.5]
 
 
 def _design(rows: Sequence[dict[str, Any]], axes: Sequence[str]) -> np.ndarray:
@@ -134,26 +147,28 @@ class _Trend:
         resid_sd = float(np.sqrt(np.mean((self.y - fitted) ** 2)))
         return resid_sd > float(np.ptp(fitted))
 
-    def predict(self, x: np.ndarray, extra_se: float = 0.0) -> tuple[float, list[float]]:
-        point = float(x @ self.beta)
+    def predict(self, x: np.ndarray) -> tuple[float, list[float], np.ndarray]:
+        """The trend at design row x: (point, 95 % interval, the chain bootstrap's replicates)."""
         reps = self.draws @ x
-        if extra_se:
-            reps = reps + np.random.default_rng(0).standard_normal(len(reps)) * extra_se
         lo, hi = np.percentile(reps, [2.5, 97.5])
-        return point, [float(lo), float(hi)]
+        return float(x @ self.beta), [float(lo), float(hi)], reps
 
 
 def _x(target: dict[str, float], axes: Sequence[str]) -> np.ndarray:
     return np.array([1.0] + [math.log(float(target[a])) for a in axes])
 
 
-def _plan_depth(k_star: float | None, slope: float, save_fraction: float) -> int | None:
-    """min(last depth worth adding under T ~ K^s, K*): the target's depth to plan for."""
-    if slope >= 0:
-        return 1
-    worth = last_depth_worth_adding("power_law", np.array([[0.0, slope]]), save_fraction)[0]
-    options = [v for v in (worth, k_star) if v is not None and np.isfinite(v)]
-    return int(round(min(options))) if options else None
+def _depth_extrapolation(pred: dict[str, Any], rows: list[dict[str, Any]]) -> None:
+    """Flag a carried depth past the deepest depth any proxy swept, and say so in the notes."""
+    deepest = pred["deepest_swept_depth"]
+    span = pred["depth_to_plan_for_range"] or []
+    figures = [v for v in (pred["depth_to_plan_for"], *span[1:], pred["reversal_depth"]) if v is not None]
+    if deepest is None or not figures or max(figures) <= deepest:
+        return
+    pred["past_swept_depths"] = True
+    pred["notes"].append(f"the carried depths reach K = {math.ceil(max(figures))}, past the deepest depth the proxies "
+                         f"swept ({deepest}): there they rest on the carried law alone; sweep the proxies to about "
+                         f"{math.ceil(max(figures))} layers before relying on them")
 
 
 def _factors(target: dict[str, float], rows: list[dict[str, Any]], axes: Sequence[str]) -> dict[str, float]:
@@ -193,7 +208,7 @@ def fit_transfer(size_fits: dict[tuple[int, int], dict[str, Any]], *, target: di
     out: dict[str, Any] = {"status": "single_size", "reason": "", "axes": [], "sizes": rows,
                            "skipped_sizes": [{"width": s[0] or None, "train_rows": s[1] or None, "reason": why}
                                              for s, why in sorted((skipped or {}).items())],
-                           "reversal_depth_law": None, "slope_law": None, "target": None}
+                           "reversal_depth_law": None, "slope_law": None, "plan_depth_law": None, "target": None}
     if len(rows) < 2:
         out["reason"] = "one proxy size: nothing to carry along"
         return out
@@ -231,17 +246,25 @@ def fit_transfer(size_fits: dict[tuple[int, int], dict[str, Any]], *, target: di
         if len(k_rows) == len(axes) + 1:
             out["warning"] = (f"{len(k_rows)} sizes for {len(axes) + 1} trend terms: the trend goes exactly "
                               "through them and nothing checks it; sweep one more size")
+    # the depth to plan for, carried the same way: sizes whose figure has an interval
+    p_rows = [r for r in rows if r["depth_to_plan_for"] and _se(r["depth_to_plan_for_ci"], log=True)]
+    plan_trend = None
+    if len(p_rows) >= len(axes) + 1:
+        plan_trend = _Trend(p_rows, np.log([r["depth_to_plan_for"] for r in p_rows]),
+                            np.array([_se(r["depth_to_plan_for_ci"], log=True) for r in p_rows]), axes, rng, n_boot)
+        out["plan_depth_law"] = {"log_intercept": float(plan_trend.beta[0]), "by_axis": plan_trend.exponents(),
+                                 "reduced_chi2": None if math.isnan(plan_trend.phi) else plan_trend.phi}
     out["status"] = "not_supported" if reasons else "supported"
     out["reason"] = "; ".join(reasons)
     if target and any(target.get(a) for a in AXES):
         out["target"] = _predict(target, rows, axes, k_trend if not reasons else None, slope_trend,
-                                 save_fraction, out)
+                                 save_fraction, out, plan_trend if not reasons else None)
     return out
 
 
 def _predict(target: dict[str, float | None], rows: list[dict[str, Any]], axes: list[str],
              k_trend: _Trend | None, slope_trend: _Trend | None, save_fraction: float,
-             block: dict[str, Any]) -> dict[str, Any]:
+             block: dict[str, Any], plan_trend: _Trend | None = None) -> dict[str, Any]:
     given = {a: target.get(a) for a in AXES}
     # an axis the proxies do not vary along: the target must sit at the proxies' value to be predicted
     fixed = {a: {r[a] for r in rows} for a in AXES if a not in axes}
@@ -251,8 +274,10 @@ def _predict(target: dict[str, float | None], rows: list[dict[str, Any]], axes: 
     pred: dict[str, Any] = {"width": given["width"], "train_rows": given["train_rows"],
                             "extrapolation_factor": factors, "reversal_depth": None, "reversal_depth_ci": None,
                             "slope": None, "slope_ci": None, "alpha": None, "alpha_ci": None,
-                            "last_depth_worth_adding": None, "depth_to_plan_for": None,
-                            "depth_to_plan_for_range": None, "notes": []}
+                            "last_depth_worth_adding": None, "plan_basis": None, "depth_to_plan_for": None,
+                            "depth_to_plan_for_range": None, "deepest_swept_depth": max(
+                                (max(r["depths_swept"]) for r in rows if r.get("depths_swept")), default=None),
+                            "past_swept_depths": False, "plan_settled": True, "notes": []}
     if off_axis:
         pred["notes"].append(f"the proxies all share one {' and '.join(off_axis)}, so the law cannot be carried "
                              f"along {' and '.join(off_axis)} to the target's; the prediction holds at the proxies' value")
@@ -261,21 +286,45 @@ def _predict(target: dict[str, float | None], rows: list[dict[str, Any]], axes: 
         pred["notes"].append("STRONG WARNING: the target is " + ", ".join(f"{factors[a]:.0f}x the largest proxy's {a}"
                              for a in far) + f"; past {FAR_FACTOR:g}x a carried figure is a guess, not a plan")
     x = _x(point, axes)
+    s_reps = None
     if slope_trend is not None:
-        s, s_ci = slope_trend.predict(x)
+        s, s_ci, s_reps = slope_trend.predict(x)
         pred.update(slope=s, slope_ci=s_ci, alpha=1 / (1 - s) if s < 0 else None,
                     alpha_ci=[1 / (1 - v) for v in s_ci] if s_ci[1] < 0 else None)
     if block["status"] != "supported" or k_trend is None:
         pred["notes"].append(f"transfer not supported by the data ({block['reason']}); no target depth is given")
         return pred
-    log_k, log_ci = k_trend.predict(x)
+    log_k, log_ci, k_reps = k_trend.predict(x)
     pred["reversal_depth"], pred["reversal_depth_ci"] = math.exp(log_k), [math.exp(v) for v in log_ci]
-    if pred["slope"] is not None:
-        worth = last_depth_worth_adding("power_law", np.array([[0.0, pred["slope"]]]), save_fraction)[0]
-        pred["last_depth_worth_adding"] = int(worth) if np.isfinite(worth) else None
-        pred["depth_to_plan_for"] = _plan_depth(pred["reversal_depth"], pred["slope"], save_fraction)
-        ends = {_plan_depth(k, s, save_fraction) for k in pred["reversal_depth_ci"] for s in pred["slope_ci"]}
-        ends.discard(None)
-        if ends:
-            pred["depth_to_plan_for_range"] = [min(ends), max(ends)]
+    # The depth to plan for: the smallest of three carried figures, replicate by replicate: K*, the last
+    # depth worth adding under T ~ K^s at the carried s, and (where the sizes' own depths to plan for
+    # have intervals) their trend, which carries what the proxies' rule adds (the cost per update).
+    point_figs, rep_figs, bases = [pred["reversal_depth"]], [np.exp(k_reps)], ["K*"]
+    if s_reps is not None:
+        worth = last_depth_worth_adding("power_law", np.column_stack([np.zeros(len(s_reps) + 1),
+                                                                     np.r_[pred["slope"], s_reps]]), save_fraction)
+        pred["last_depth_worth_adding"] = int(worth[0]) if np.isfinite(worth[0]) else None
+        point_figs.append(worth[0])
+        rep_figs.append(worth[1:])
+        bases.append("the last depth worth adding at the carried s")
+    if plan_trend is not None:
+        log_p, _, p_reps = plan_trend.predict(x)
+        point_figs.append(math.exp(log_p))
+        rep_figs.append(np.exp(p_reps))
+        bases.append("the trend of each proxy size's own depth to plan for ("
+                     + "; ".join(sorted({r["plan_basis"] for r in plan_trend.rows if r.get("plan_basis")})) + ")")
+    plan = np.nanmin(point_figs)
+    reps = np.fmin.reduce(np.vstack(rep_figs), axis=0)
+    reps = reps[np.isfinite(reps)]
+    pred["depth_to_plan_for"] = max(1, int(round(plan)))
+    if len(reps):
+        lo, hi = np.percentile(reps, [2.5, 97.5])
+        pred["depth_to_plan_for_range"] = [max(1, math.floor(lo)), max(1, math.ceil(hi))]
+    pred["plan_basis"] = "the smallest of " + ", ".join(bases) + ", each carried along size"
+    span = pred["depth_to_plan_for_range"]
+    if span and span[1] - span[0] > max(4, pred["depth_to_plan_for"]):
+        pred["plan_settled"] = False
+        pred["notes"].append(f"the carried depth to plan for is not pinned down: the data allow {span[0]} to {span[1]} "
+                             "layers; plan from the range and the carried K*, or sweep more seeds per size to narrow it")
+    _depth_extrapolation(pred, rows)
     return pred

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import math
 import statistics
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
@@ -270,9 +271,21 @@ def _what_was_swept(inp: ReportInputs) -> str:
     depths = ", ".join(str(k) for k in fit.depths_swept)
     seeds = sorted({row.runs for row in fit.per_depth})
     per = f"{seeds[0]}" if len(seeds) == 1 else f"{seeds[0]} to {seeds[-1]}"
-    n_all = len([r for r in inp.runs if r.lr_mode != "tuning"])
+    trained = [r for r in inp.runs if r.lr_mode != "tuning"]
+    head = (fit.transfer.headline_size or {}) if fit.transfer else {}
+    sized = [r for r in trained if (not head.get("width") or r.width == head["width"])
+             and (r.train_rows or 0) == (head.get("train_rows") or 0)] if head else trained
     runs_words = f"{fit.n_runs} runs" + (
-        f" with the {F.group_label(fit.group)} ({n_all} in all)" if n_all > fit.n_runs else "")
+        f" with the {F.group_label(fit.group)} ({len(sized)} at this size)" if len(sized) > fit.n_runs else "")
+    if head:
+        every = [r for r in inp.every_size if r.lr_mode != "tuning"]
+        widths = sorted({r.width for r in every if r.width})
+        rows = sorted({r.train_rows for r in every if r.train_rows})
+        runs_words += (f" of the largest proxy ({', '.join(f'{k} {v:,}'.replace('_', ' ') for k, v in head.items() if v)}),"
+                       f" out of {len(every)} runs at every proxy size ("
+                       + "; ".join(p for p in (f"widths {', '.join(map(str, widths))}" if len(widths) > 1 else "",
+                                               f"training rows {', '.join(f'{n:,}' for n in rows)}" if len(rows) > 1 else "")
+                                   if p) + ")")
     if inp.kind == "table":
         return (f"**What was measured.** {fit.n_runs} rows of the measurements table "
                 f"`{inp.path.name}` at depths {depths}, {per} runs per depth. The table does not say how "
@@ -285,7 +298,7 @@ def _what_was_swept(inp: ReportInputs) -> str:
     opt = "SGD" if cfg.train.optimizer == "sgd" else cfg.train.optimizer.capitalize()
     return (f"**What was swept.** {runs_words} on {_dataset_words(cfg)}: depths {depths} "
             f"({len(fit.depths_swept)} depths), {per} seeds per depth. Each network is "
-            f"{model_words(cfg.model)} trained with "
+            f"{model_words(replace(cfg.model, width=head['width']) if head.get('width') else cfg.model)} trained with "
             f"{opt}, {_rate_words(cfg)}, batch {cfg.train.batch_size}, at most "
             f"{cfg.train.max_updates:,} updates; a run counts as converged at the first check (every "
             f"{cfg.train.eval_every} updates) at which {_criterion_words(cfg)}.")
@@ -319,7 +332,11 @@ def _caution(inp: ReportInputs, w: Words) -> str:
     if far:
         text += (f" Figures marked {EXTRAPOLATED} lie outside the swept depths {lo} to {hi} and rest "
                  f"on the fitted law alone (here K = {', '.join(map(str, far))}).")
-    else:
+    tg = inp.result.transfer.target if inp.result.transfer else None
+    if tg and tg.past_swept_depths:
+        text += (f" The target's carried depths reach past the deepest depth the proxies swept "
+                 f"({tg.deepest_swept_depth}) and rest on the carried law alone.")
+    elif not far:
         text += f" No figure in this report lies outside the swept depths {lo} to {hi}."
     groups = F.fitted_groups(inp.result)
     if len(groups) == 1 and groups[0].group.lr_mode == "fixed" and given(groups[0].group.learning_rate):

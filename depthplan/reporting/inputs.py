@@ -32,6 +32,7 @@ class ReportInputs:
     config_text: str = ""
     tuning: list[dict[str, Any]] = field(default_factory=list)
     rounds: list[dict[str, Any]] = field(default_factory=list)
+    every_size: list[RunResult] = field(default_factory=list)   # with proxy sizes: the runs of all of them
 
     @cached_property
     def result(self) -> FitResult:

@@ -83,6 +83,9 @@ def _check_words(v: TransferVerify, w: Words) -> str:
     if given(v.slope_inside):
         text += (" The measured slope lies " + ("inside" if v.slope_inside else "outside")
                  + " its widened prediction interval.")
+    if given(v.depth_inside_range) and p.get("depth_to_plan_for_range"):
+        text += (f" The measured depth to plan for lies {'inside' if v.depth_inside_range else '**outside**'} "
+                 f"the predicted range ({w.interval(vp + 'depth_to_plan_for_range', 'd')}).")
     return text
 
 
@@ -100,14 +103,25 @@ def _target_words(inp: ReportInputs, t: Transfer, w: Words) -> str:
         return head + (f"no target depth is given. {t.reason or 'The trend along size does not support one'}"
                        ". Plan from the proxy answer below only as far as the target resembles the proxies, "
                        "or sweep more proxy sizes.")
-    text = head + f"plan for **{w.num(p + 'depth_to_plan_for', 'd')} hidden layers**"
-    if tg.depth_to_plan_for_range:
-        text += f" (range {w.interval(p + 'depth_to_plan_for_range', 'd')})"
-    text += (f", carried along size from the proxies: K* ≈ {w.num(p + 'reversal_depth', '.1f')}"
-             f"{w.ci(p + 'reversal_depth_ci', '.1f')}")
+    if given(tg.plan_settled) and not tg.plan_settled:
+        text = head + (f"**no single depth**: the data allow {w.interval(p + 'depth_to_plan_for_range', 'd')} hidden "
+                       f"layers (carried figure {w.num(p + 'depth_to_plan_for', 'd')}), because at every proxy size the "
+                       "total compute is nearly flat over depth, so each size's own depth to plan for is loose")
+    else:
+        text = head + f"plan for **{w.num(p + 'depth_to_plan_for', 'd')} hidden layers**"
+        if tg.depth_to_plan_for_range:
+            text += f" (range {w.interval(p + 'depth_to_plan_for_range', 'd')})"
+    text += (f"; carried along size from the proxies, the depth of fewest updates K* ≈ "
+             f"{w.num(p + 'reversal_depth', '.1f')}{w.ci(p + 'reversal_depth_ci', '.1f')}")
     if given(tg.slope):
         text += f", s = {w.num(p + 'slope')}{w.ci(p + 'slope_ci')}"
     text += " (95 % prediction intervals)."
+    if given(tg.plan_basis):
+        text += f" The depth to plan for is {tg.plan_basis}."
+    if tg.past_swept_depths:
+        text += (f" **Beyond the swept depths:** these figures reach past the deepest depth the proxies swept "
+                 f"({w.num(p + 'deepest_swept_depth', 'd')}), where they rest on the carried law alone; sweep the "
+                 "proxies deeper before relying on them.")
     if far:
         text += (f" **Strong warning:** past {FAR_FACTOR:g}x the largest proxy this figure is a guess, not a "
                  "plan; sweep larger proxies before relying on it.")

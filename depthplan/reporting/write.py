@@ -154,7 +154,7 @@ def read_inputs(path: Path, fit_file: Path, *, n_boot: int = 400) -> ReportInput
         config, text = _read_config(path)
         inp = ReportInputs(path, "results_folder", fit, note, runs, info, config, text,
                            _read_tuning(path / "tuning.csv"), _read_rounds(info))
-    inp.runs = headline_runs(inp.result, inp.runs)   # with proxy sizes: the size the headline describes
+    inp.every_size, inp.runs = inp.runs, headline_runs(inp.result, inp.runs)   # with proxy sizes: the size the headline describes
     return inp
 
 

@@ -148,7 +148,8 @@ def check_sizes(cfg: SweepFile) -> None:
 #: The store's key of the prediction for the held-out size (written once, before it trains).
 PREDICTION_KEY = "verify_prediction"
 _KEPT = ("reversal_depth", "reversal_depth_ci", "slope", "slope_ci", "alpha", "alpha_ci",
-         "last_depth_worth_adding", "depth_to_plan_for", "depth_to_plan_for_range", "extrapolation_factor", "notes")
+         "last_depth_worth_adding", "depth_to_plan_for", "depth_to_plan_for_range",
+         "plan_basis", "extrapolation_factor", "notes")
 
 
 def predict_held_out(cfg: SweepFile, runs: Sequence[RunResult], *, n_boot: int = 400) -> dict[str, Any]:

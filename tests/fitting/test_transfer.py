@@ -17,6 +17,7 @@ import pytest
 from depthplan.errors import ConfigError
 from depthplan.fit_record import FitResult
 from depthplan.fitting.assemble import fit_runs
+from depthplan.fitting.transfer import fit_transfer
 from depthplan.records import RunResult, write_runs_csv
 
 DEPTHS = (2, 3, 4, 6, 8, 11, 16, 22, 32, 45, 64)
@@ -91,6 +92,58 @@ def test_corners_unrelated_to_width_are_not_carried():
     assert t["status"] == "not_supported" and "monotone" in t["reason"]
     assert t["target"]["depth_to_plan_for"] is None and t["target"]["reversal_depth"] is None
     assert any("transfer not supported by the data" in w for w in fit["warnings"])
+
+
+def _worth_brute_force(s: float, save: float = 0.05) -> int:
+    """The last depth worth adding under T = K^s, by walking K up until the next layer saves under 5 %."""
+    k = 1
+    while 1 - ((k + 1) / k) ** s >= save:
+        k += 1
+    return k
+
+
+def test_the_depth_to_plan_for_is_carried_and_passes_its_held_out_check():
+    # Seeded synthetic sizes with a known answer: corner K* = 2 W^0.5 and s = -0.8, so each size's
+    # depth to plan for is the smaller of K* and the last depth worth adding (15 under K^-0.8, found
+    # by brute force); at width 256 the rule gives that 15 (K* = 32), which a trend of the per-size
+    # depths alone (8, 12, 15, ...) would overshoot.
+    fit = fit_runs(sweep([16, 32, 64, 128]), n_boot=100, target={"width": 256, "train_rows": None},
+                   holdout={"width": 128})
+    t = fit["transfer"]
+    v, tg = t["verify"], t["target"]
+    assert v["depth_inside_range"] is True
+    truth = min(_worth_brute_force(-0.8), round(k_star(256)))
+    assert abs(tg["depth_to_plan_for"] - truth) <= 2
+    assert tg["depth_to_plan_for_range"][0] <= truth <= tg["depth_to_plan_for_range"][1]
+    assert tg["plan_settled"] is True and tg["past_swept_depths"] is False
+    assert "the last depth worth adding at the carried s" in tg["plan_basis"]
+    # a steep slope leaves K* the binding figure: the plan follows the corner (2 x 256^0.5 = 32)
+    steep = fit_runs(sweep([16, 32, 64, 128], slope=lambda w: -2.0), n_boot=100,
+                     target={"width": 256, "train_rows": None})["transfer"]["target"]
+    assert abs(steep["depth_to_plan_for"] - 32) <= 3
+
+
+def _size_fit(k: float, plan: int, plan_ci: list[int], s: float = -1.0) -> dict:
+    """A per-size fit block with only the fields the carry reads (values invented for the test)."""
+    return {"n_runs": 24, "depths_swept": [2, 4, 8, 16, 20],
+            "reversal": {"status": "observed", "depth": k, "depth_ci": [k * 0.92, k * 1.08]},
+            "power_law": {"slope": s, "slope_ci": [s - 0.05, s + 0.05]},
+            "planning": {"recommended_depth": plan, "recommended_basis": "compute-optimal depth (flops)",
+                         "compute_optimal_depth": {"depth": plan, "ci": plan_ci},
+                         "last_depth_worth_adding": {"depth": 12, "ci": [11, 13]}}}
+
+
+def test_loose_per_size_plans_give_a_range_not_a_depth_and_deep_carries_are_flagged():
+    # Each size's compute-optimal depth is loose (a flat total compute), as in our demo scenario.
+    fits = {(16, 0): _size_fit(7.7, 7, [4, 8]), (24, 0): _size_fit(10.1, 5, [4, 9]),
+            (32, 0): _size_fit(10.8, 6, [5, 10])}
+    tg = fit_transfer(fits, target={"width": 128, "train_rows": None}, n_boot=200)["target"]
+    assert tg["plan_settled"] is False
+    lo, hi = tg["depth_to_plan_for_range"]
+    assert hi - lo > max(4, tg["depth_to_plan_for"])
+    assert any("not pinned down" in n for n in tg["notes"])
+    assert tg["reversal_depth"] > 20 and tg["deepest_swept_depth"] == 20 and tg["past_swept_depths"] is True
+    assert any("past the deepest depth the proxies swept (20)" in n for n in tg["notes"])
 
 
 def test_far_targets_carry_a_strong_warning():
