@@ -4,6 +4,9 @@ from __future__ import annotations
 import pytest
 import torch
 
+from depthplan.config import DataConfig
+from depthplan.train.datasets import load_dataset
+
 
 @pytest.fixture
 def one_thread():
@@ -14,3 +17,9 @@ def one_thread():
     torch.set_num_threads(1)
     yield
     torch.set_num_threads(before)
+
+
+@pytest.fixture(scope="module")
+def data():
+    """The invented synthetic task the mlp trainer's tests train on: 400 rows, 12 features, 3 classes."""
+    return load_dataset(DataConfig(source="synthetic", n_samples=400, n_features=12, n_classes=3))

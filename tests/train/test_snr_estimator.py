@@ -1,4 +1,5 @@
-"""The bias-corrected gradient SNR: simulated gradients of known SNR, a real network, the NaN path."""
+"""The bias-corrected gradient SNR: simulated gradients of known SNR and the NaN path (on a real
+network against autograd: tests/train/test_stacked.py)."""
 from __future__ import annotations
 
 import json
@@ -6,16 +7,10 @@ import math
 
 import numpy as np
 import pytest
-import torch
-import torch.nn.functional as F
 
-from depthplan.config import DataConfig, ModelConfig
 from depthplan.fitting.diffusion import diffusion_summary, snr_drop_db, transition_step
 from depthplan.records import RunResult, write_runs_jsonl
-from depthplan.train.datasets import load_dataset
-from depthplan.train.models import build_mlp
 from depthplan.train.probes import gradient_snr_db, log_spaced_steps
-from depthplan.train.stacked import _gradient_snr, _Stack
 
 WINDOW = 16
 
@@ -84,48 +79,6 @@ def test_windows_without_signal_fall_below_the_floor_about_half_the_time() -> No
     assert gradient_snr_db(np.ones((WINDOW, 1, 3)))[0] == math.inf      # identical draws: no noise
     with pytest.raises(ValueError):
         gradient_snr_db(np.ones((1, 1, 3)))                             # S needs two draws
-
-
-# --------------------------------------------------------------------------- a real network
-
-def test_tool_snr_matches_autograd_full_batch_signal_and_per_example_noise() -> None:
-    # Reference: torch.autograd on nn.Sequential with the same weights. A minibatch of B rows drawn
-    # uniformly with replacement has mean gradient G (the full-batch gradient) and covariance
-    # Sigma_ex / B (Sigma_ex the per-example gradient covariance over the training set), so the
-    # true SNR is ||G||^2 / (tr Sigma_ex / B).
-    data = load_dataset(DataConfig(source="synthetic", n_samples=400, n_features=12, n_classes=3))
-    x = torch.from_numpy(data.x_train).double()
-    y = torch.from_numpy(data.y_train)
-    net = build_mlp(ModelConfig(width=8), x.shape[1], 2, data.n_classes, 0, torch.float64)
-    linears = [m for m in net if isinstance(m, torch.nn.Linear)]
-    per_example = [[] for _ in linears]
-    for i in range(len(y)):
-        net.zero_grad()
-        F.cross_entropy(net(x[i:i + 1]), y[i:i + 1]).backward()
-        for layer, lin in enumerate(linears):
-            per_example[layer].append(lin.weight.grad.reshape(-1).clone())
-
-    # The tool: the same weights stacked n_windows times, one independent window per "seed".
-    n_windows, batch = 400, 8
-    ws = [lin.weight.detach().T.expand(n_windows, -1, -1).contiguous() for lin in linears]
-    bs = [lin.bias.detach().view(1, 1, -1).expand(n_windows, -1, -1).contiguous() for lin in linears]
-    rows = np.random.default_rng(3).integers(0, len(y), (n_windows, WINDOW, batch))
-    onehot = F.one_hot(y, data.n_classes).double()
-    tool = _gradient_snr(_Stack(ws, bs), x, onehot, rows, "tanh")
-
-    for layer, grads in enumerate(per_example):
-        p = torch.stack(grads).numpy()
-        full = p.mean(axis=0)
-        true_db = 10 * math.log10((full ** 2).sum() / (((p - full) ** 2).sum(axis=1).mean() / batch))
-        est = tool[layer]
-        assert np.isfinite(est).all()          # at initialisation the SNR is well above the floor
-        # Tolerance from the window: the per-window spread sigma at n = 16 (measured: IQR / 1.349 for
-        # a normal) gives the median of n_windows windows a standard error of 1.2533 sigma / sqrt(n_windows)
-        # (asymptotic variance of a normal sample median); allow 4 of them, plus 0.3 dB for the
-        # median of a right-skewed quadratic form sitting below its mean.
-        q75, q25 = np.percentile(est, [75, 25])
-        tol = 4 * 1.2533 * (q75 - q25) / 1.349 / math.sqrt(n_windows) + 0.3
-        assert abs(np.median(est) - true_db) < tol, (layer, np.median(est), true_db, tol)
 
 
 # --------------------------------------------------------------------------- NaN downstream
