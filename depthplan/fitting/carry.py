@@ -21,7 +21,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from .transfer import _Z, AXES, _se, _Trend, _x, fit_transfer
+from .transfer import _Z, AXES, _se, _x, fit_transfer, trend_of
 
 __all__ = ["held_out_size", "verify_block", "trend_curve"]
 
@@ -138,13 +138,13 @@ def trend_curve(block: dict[str, Any], points: Sequence[dict[str, Any]], *, n_bo
     out: dict[str, Any] = {"axis": axis, "fixed": {a: largest[a] for a in axes if a != axis},
                            "largest_proxy": largest[axis], "x": x.tolist()}
     for name, key, log in (("slope", "slope", False), ("reversal_depth", "reversal_depth", True)):
-        use = [r for r in rows if r[key] is not None and _se(r[f"{key}_ci"], log=log)]
-        if len(use) < len(axes) + 1 or (log and block.get("status") != "supported"):
+        if log and block.get("status") != "supported":
             out[name] = None
             continue
-        y = np.array([math.log(r[key]) if log else r[key] for r in use])
-        se = np.array([_se(r[f"{key}_ci"], log=log) for r in use])
-        trend = _Trend(use, y, se, axes, rng, n_boot)
+        _, trend = trend_of(rows, key, axes, rng, n_boot, log=log)
+        if trend is None:
+            out[name] = None
+            continue
         mid, lo, hi = [], [], []
         for v in x:
             point = {**largest, axis: v}

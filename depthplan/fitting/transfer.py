@@ -34,7 +34,7 @@ import numpy as np
 
 from .planning import last_depth_worth_adding
 
-__all__ = ["AXES", "size_of", "fit_transfer", "target_error", "FAR_FACTOR", "SHORT_FACTOR"]
+__all__ = ["AXES", "size_of", "fit_transfer", "target_error", "trend_of", "FAR_FACTOR", "SHORT_FACTOR"]
 
 AXES = ("width", "train_rows")
 SHORT_FACTOR = 4.0       # up to here the carry is short
@@ -114,6 +114,18 @@ def _monotone(rows: list[dict[str, Any]], y: np.ndarray, se: np.ndarray, axes: S
         if len(signs) > 1:
             return False
     return True
+
+
+def trend_of(rows: list[dict[str, Any]], key: str, axes: Sequence[str], rng: np.random.Generator,
+             n_boot: int, *, log: bool) -> tuple[list[dict[str, Any]], _Trend | None]:
+    """The rows with `key` and an interval on it, and their trend along size (None with fewer rows
+    than the trend has terms plus one); on log `key` when `log`."""
+    use = [r for r in rows if r.get(key) is not None and _se(r.get(f"{key}_ci"), log=log)]
+    if len(use) < len(axes) + 1:
+        return use, None
+    y = np.array([math.log(r[key]) if log else float(r[key]) for r in use])
+    se = np.array([_se(r[f"{key}_ci"], log=log) for r in use])
+    return use, _Trend(use, y, se, axes, rng, n_boot)
 
 
 class _Trend:
@@ -219,41 +231,26 @@ def fit_transfer(size_fits: dict[tuple[int, int], dict[str, Any]], *, target: di
         return out
     rng = np.random.default_rng(seed)
     reasons = []
-    # slope trend: every size has a slope
-    s_rows = [r for r in rows if r["slope"] is not None and _se(r["slope_ci"], log=False)]
-    slope_trend = None
-    if len(s_rows) >= len(axes) + 1:
-        slope_trend = _Trend(s_rows, np.array([r["slope"] for r in s_rows]),
-                             np.array([_se(r["slope_ci"], log=False) for r in s_rows]), axes, rng, n_boot)
-        out["slope_law"] = {"intercept": float(slope_trend.beta[0]), "by_axis": slope_trend.exponents(),
-                            "reduced_chi2": None if math.isnan(slope_trend.phi) else slope_trend.phi}
-    # K* trend: sizes with an observed reversal
-    k_rows = [r for r in rows if r["reversal_depth"] and _se(r["reversal_depth_ci"], log=True)]
-    k_trend = None
-    if len(k_rows) < len(axes) + 1:
+    # the slope (every size has one), K* (sizes with an observed reversal), the depth to plan for
+    # (sizes whose figure has an interval); drawn in this order from one generator
+    _, slope_trend = trend_of(rows, "slope", axes, rng, n_boot, log=False)
+    k_rows, k_trend = trend_of(rows, "reversal_depth", axes, rng, n_boot, log=True)
+    _, plan_trend = trend_of(rows, "depth_to_plan_for", axes, rng, n_boot, log=True)
+    for key, trend in (("slope_law", slope_trend), ("reversal_depth_law", k_trend), ("plan_depth_law", plan_trend)):
+        if trend is not None:
+            out[key] = {"intercept" if key == "slope_law" else "log_intercept": float(trend.beta[0]),
+                        "by_axis": trend.exponents(), "reduced_chi2": None if math.isnan(trend.phi) else trend.phi}
+    if k_trend is None:
         reasons.append(f"a reversal is observed at {len(k_rows)} of {len(rows)} sizes; the trend of K* along "
                        f"{' and '.join(axes)} needs {len(axes) + 1}")
     else:
-        y = np.log([r["reversal_depth"] for r in k_rows])
-        se = np.array([_se(r["reversal_depth_ci"], log=True) for r in k_rows])
-        k_trend = _Trend(k_rows, y, se, axes, rng, n_boot)
-        out["reversal_depth_law"] = {"log_intercept": float(k_trend.beta[0]), "by_axis": k_trend.exponents(),
-                                     "reduced_chi2": None if math.isnan(k_trend.phi) else k_trend.phi}
-        if not _monotone(k_rows, y, k_trend.se, axes):
+        if not _monotone(k_rows, k_trend.y, k_trend.se, axes):
             reasons.append("the per-size K* do not follow a monotone law along size")
         elif not k_trend.significant() and k_trend.scatter_exceeds_trend():
             reasons.append("the per-size K* scatter more about their trend than the trend moves")
         if len(k_rows) == len(axes) + 1:
             out["warning"] = (f"{len(k_rows)} sizes for {len(axes) + 1} trend terms: the trend goes exactly "
                               "through them and nothing checks it; sweep one more size")
-    # the depth to plan for, carried the same way: sizes whose figure has an interval
-    p_rows = [r for r in rows if r["depth_to_plan_for"] and _se(r["depth_to_plan_for_ci"], log=True)]
-    plan_trend = None
-    if len(p_rows) >= len(axes) + 1:
-        plan_trend = _Trend(p_rows, np.log([r["depth_to_plan_for"] for r in p_rows]),
-                            np.array([_se(r["depth_to_plan_for_ci"], log=True) for r in p_rows]), axes, rng, n_boot)
-        out["plan_depth_law"] = {"log_intercept": float(plan_trend.beta[0]), "by_axis": plan_trend.exponents(),
-                                 "reduced_chi2": None if math.isnan(plan_trend.phi) else plan_trend.phi}
     out["status"] = "not_supported" if reasons else "supported"
     out["reason"] = "; ".join(reasons)
     if target and any(target.get(a) for a in AXES):
@@ -316,7 +313,7 @@ def _predict(target: dict[str, float | None], rows: list[dict[str, Any]], axes: 
     plan = np.nanmin(point_figs)
     reps = np.fmin.reduce(np.vstack(rep_figs), axis=0)
     reps = reps[np.isfinite(reps)]
-    pred["depth_to_plan_for"] = max(1, int(round(plan)))
+    pred["depth_to_plan_for"] = max(1, round(plan))
     if len(reps):
         lo, hi = np.percentile(reps, [2.5, 97.5])
         pred["depth_to_plan_for_range"] = [max(1, math.floor(lo)), max(1, math.ceil(hi))]
