@@ -31,7 +31,7 @@ def _answer_markdown(path: Path, fit: dict, runs) -> str:
     return to_markdown(answer_blocks(inp, Words(fit)), fit, "Depth plan", "figures")
 
 
-# ------------------------------------------------------------------ moved from test_write.py
+# ------------------------------------------------------------------ in a written report
 
 def test_report_leads_with_the_accuracy_warning(tmp_path):
     # Invented table: a clean law T = 8000 K^-0.7 plans deep, where validation accuracy is clearly

@@ -29,7 +29,7 @@ from depthplan.reporting.figures import (
 from report_data import PNG_SIGNATURE, SVG_NS
 
 
-# ------------------------------------------------------------------ moved from test_write.py
+# ------------------------------------------------------------------ in a written report
 
 def test_scaling_plot_draws_censored_and_diverged_runs_as_such(rates_report):
     folder, paths = rates_report

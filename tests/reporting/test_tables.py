@@ -33,7 +33,7 @@ def _inputs(fit: dict, path: Path = Path("t.csv"), runs=(), **kw) -> ReportInput
     return ReportInputs(path=path, kind="table", fit=fit, fit_note="fitted now", runs=list(runs), **kw)
 
 
-# ------------------------------------------------------------------ moved from test_write.py
+# ------------------------------------------------------------------ in a written report
 
 def test_rate_groups_tuning_and_rounds_are_shown(rates_report):
     folder, paths = rates_report
