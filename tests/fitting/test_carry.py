@@ -1,6 +1,6 @@
 """Predict, then verify (fitting.carry, DESIGN.md section 8): a held-out proxy size against its prediction.
 
-Seeded synthetic sweeps with a known answer (the broken-stick generator of test_transfer: the
+Seeded synthetic sweeps with a known answer (the broken-stick generator of fitting_data.sweep: the
 corner moves as K*(W) = 2 W^0.5). A held-out width drawn from the same law must land inside the
 widened interval; one whose corner is moved to three times the law's must land outside. The
 widening is checked against its closed form (quadrature sum of the prediction's half-width and
@@ -16,7 +16,7 @@ import pytest
 from depthplan.fit_record import FitResult
 from depthplan.fitting.assemble import fit_runs
 from depthplan.records import write_runs_csv
-from test_transfer import k_star, sweep
+from fitting_data import k_star, sweep
 
 Z = 1.959963984540054
 

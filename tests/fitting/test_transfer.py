@@ -11,35 +11,15 @@ import math
 import subprocess
 import sys
 
-import numpy as np
 import pytest
 
 from depthplan.errors import ConfigError
 from depthplan.fit_record import FitResult
 from depthplan.fitting.assemble import fit_runs
 from depthplan.fitting.transfer import fit_transfer
-from depthplan.records import RunResult, write_runs_csv
+from depthplan.records import write_runs_csv
 
-DEPTHS = (2, 3, 4, 6, 8, 11, 16, 22, 32, 45, 64)
-
-
-def k_star(width: float, a: float = 2.0, b: float = 0.5) -> float:
-    return a * width ** b
-
-
-def sweep(widths, *, slope=lambda w: -0.8, corner=k_star, rise=0.6, seeds=3, sd=0.05, seed=0, depths=DEPTHS):
-    rng = np.random.default_rng(seed)
-    runs = []
-    for w in widths:
-        s, ks = slope(w), corner(w)
-        for k in depths:
-            for i in range(seeds):
-                log_t = math.log(20000) + s * math.log(k) + (rise - s) * max(0.0, math.log(k / ks)) + rng.normal(0, sd)
-                runs.append(RunResult(depth=k, width=w, seed=i, learning_rate=0.1, status="converged",
-                                      iterations=int(math.exp(log_t)), wall_seconds=1.0, seconds_per_update=math.nan,
-                                      final_train_loss=0.1, final_train_accuracy=1.0, validation_accuracy=math.nan,
-                                      n_params=0))
-    return runs
+from fitting_data import k_star, sweep
 
 
 def test_corner_moving_as_a_power_of_width_is_recovered_and_predicted_at_a_held_out_width():

@@ -1,16 +1,13 @@
-"""Tests of depthplan.reporting.write: the hand-over report.
+"""Tests of depthplan.reporting.write: the hand-over report as a whole.
 
-Three inputs: a stored results folder cut from a real demo sweep
-(tests/data/report-folder, made by tests/data/make_report_fixture.py), a
-measurements table, and a results folder of invented runs (several rate
-groups, tuning trials, censored and diverged runs, probes) drawn from known
-laws. The sources of outside facts are named beside each check.
+The inputs (a stored demo folder, an invented measurements table, an invented folder with several
+rate groups) and the HTML reader are in report_data.py, the written reports in conftest.py. The
+checks of one part of the report live beside that part's module (test_answer.py, test_tables.py,
+test_markup.py, test_figures.py, ...). The sources of outside facts are named beside each check.
 """
 from __future__ import annotations
 
 import base64
-import csv
-import functools
 import json
 import math
 import os
@@ -20,203 +17,33 @@ import subprocess
 import sys
 import time
 import xml.etree.ElementTree as ET
-from html.parser import HTMLParser
 from pathlib import Path
 
 import numpy as np
 import pytest
-from matplotlib.figure import Figure
 
 from depthplan.cli import main
-from depthplan.fit_record import FitGroup
-from depthplan.reporting.figures import plot_scaling
 from depthplan.records import RunResult, write_runs_csv
 from depthplan.reporting.write import ensure_fit, write_report
 
-ROOT = Path(__file__).resolve().parents[2]
-FIXTURE = ROOT / "tests" / "data" / "report-folder"
+from report_data import (
+    ALL_REPORTS,
+    FIXTURE,
+    N_BOOT,
+    PNG_SIGNATURE,
+    ROOT,
+    SVG_NS,
+    expected_text,
+    page,
+    value_at,
+    write_table,
+)
+
 ARTEFACTS = ROOT / "tests" / "artefacts"
 CHROMIUM = Path("/usr/bin/chromium")
-N_BOOT = 40
-# PNG specification (ISO/IEC 15948, RFC 2083 section 3.1): every PNG file starts with these 8 bytes
-PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
-SVG_NS = "{http://www.w3.org/2000/svg}"     # SVG 1.1 (W3C), the namespace of the root element
-
-
-# ------------------------------------------------------------------ inputs
-
-def write_table(path: Path) -> Path:
-    """An invented measurements table: T = 12000 K^-0.8 with 5 % noise, 4 seeds, depths 1-8;
-    one K = 1 run stopped at a budget of 10000 (censored); seconds per update 1 ms + 0.5 ms K."""
-    rng = np.random.default_rng(3)
-    with path.open("w", newline="") as fh:
-        w = csv.writer(fh)
-        w.writerow(["depth", "seed", "iterations", "status", "seconds_per_update"])
-        for k in (1, 2, 3, 4, 6, 8):
-            for s in range(4):
-                t = 12000 * k ** -0.8 * math.exp(rng.normal(0, 0.05))
-                status = "censored" if k == 1 and s == 0 else "converged"
-                w.writerow([k, s, 10000 if status == "censored" else round(t), status,
-                            f"{1e-3 * (1 + 0.5 * k):.6f}"])
-    return path
-
-
-def _invented_run(depth: int, seed: int, t: float, lr: float, mode: str, budget: int,
-                  rng: np.random.Generator, status: str | None = None) -> RunResult:
-    """One invented run whose loss falls to 0.1 at T, with probes: each layer's displacement grows
-    as t (drift) up to step 50 and as sqrt(t) after it; its SNR falls from +10 to -20 dB there."""
-    status = status or ("censored" if t >= budget else "converged")
-    steps_run = int(min(t, budget)) if status != "diverged" else 300
-    eval_steps = tuple(range(20, steps_run + 1, 20)) or (20,)
-    loss = tuple(float(2.3 * math.exp(math.log(0.1 / 2.3) * s / t)) for s in eval_steps)
-    probe_steps = tuple(int(s) for s in np.unique(np.geomspace(1, steps_run, 12).astype(int)))
-    ts = np.asarray(probe_steps, float)
-    disp = np.where(ts <= 50, 0.01 * ts, 0.5 * np.sqrt(ts / 50))
-    snr = np.where(ts <= 50, 10.0, -20.0) + rng.normal(0, 0.5, len(ts))
-    layers = depth + 1
-    return RunResult(depth=depth, width=8, seed=seed, learning_rate=lr, status=status,
-                     iterations=steps_run, wall_seconds=steps_run * 1e-4 * (1 + depth),
-                     seconds_per_update=1e-4 * (1 + depth), final_train_loss=loss[-1],
-                     final_train_accuracy=0.9, validation_accuracy=0.8, n_params=100 * layers,
-                     lr_mode=mode, eval_steps=eval_steps, train_loss=loss, probe_steps=probe_steps,
-                     displacement=tuple(tuple(float(x) * (1 + j / layers) for x in disp)
-                                        for j in range(layers)),
-                     snr_db=tuple(tuple(float(x) for x in snr) for _ in range(layers)))
-
-
-def write_rates_folder(folder: Path) -> Path:
-    """Invented runs at depths 1-16: fixed rate 0.02 with T = 14000/K up to K = 10 and rising as
-    K^1.5 past it (budget 12000, so K = 1 is censored; one K = 16 run diverged), fixed rate 0.04
-    with half those T (T lr K constant), and a tuned rate with T = 5000 K^-0.5; tuning trials and
-    two adaptive rounds beside them."""
-    rng = np.random.default_rng(7)
-    budget, runs = 12000, []
-
-    def fixed_t(k: int, lr: float) -> float:
-        base = 14000 / k if k <= 10 else 1400 * (k / 10) ** 1.5
-        return base * 0.02 / lr
-
-    for k in (1, 2, 3, 4, 6, 8, 12, 16):
-        for s in range(3):
-            noise = math.exp(rng.normal(0, 0.05))
-            diverged = "diverged" if (k, s) == (16, 2) else None
-            runs.append(_invented_run(k, s, fixed_t(k, 0.02) * noise, 0.02, "fixed", budget, rng,
-                                      diverged))
-            runs.append(_invented_run(k, s, fixed_t(k, 0.04) * noise, 0.04, "fixed", budget, rng))
-            runs.append(_invented_run(k, s, 5000 * k ** -0.5 * noise, 0.05 / math.sqrt(k), "tuned",
-                                      budget, rng))
-    folder.mkdir(parents=True)
-    write_runs_csv(runs, folder / "runs.csv")
-    (folder / "runs.jsonl").write_text("".join(json.dumps(r.to_dict()) + "\n" for r in runs))
-    (folder / "sweep.json").write_text(json.dumps({
-        "name": "invented-rates", "fingerprint": "0123456789abcdef", "eval_every": 20,
-        "max_updates": budget, "seeds": [0, 1, 2],
-        "rounds": [{"reason": "round 1: T still falls at K = 8; adding 12 and 16", "stop": False},
-                   {"reason": "round 2: reversal interval narrow enough", "stop": True}]}))
-    with (folder / "tuning.csv").open("w", newline="") as fh:
-        w = csv.writer(fh)
-        w.writerow(["depth", "trial", "learning_rate", "objective", "statuses"])
-        for k in (1, 2, 3, 4, 6, 8, 12, 16):
-            for trial, lr in enumerate(0.05 / math.sqrt(k) * np.array([0.25, 0.5, 1.0, 2.0])):
-                w.writerow([k, trial, f"{lr:.5f}", f"{5000 * k ** -0.5 * (1 + abs(math.log(lr * math.sqrt(k) / 0.05))):.1f}",
-                            "converged converged"])
-    return folder
-
-
-@pytest.fixture(scope="module")
-def folder_report(tmp_path_factory):
-    folder = tmp_path_factory.mktemp("stored") / "demo"
-    shutil.copytree(FIXTURE, folder)
-    return folder, write_report(folder, n_boot=N_BOOT)
-
-
-@pytest.fixture(scope="module")
-def table_report(tmp_path_factory):
-    table = write_table(tmp_path_factory.mktemp("table") / "timings.csv")
-    return table, write_report(table, n_boot=N_BOOT)
-
-
-@pytest.fixture(scope="module")
-def rates_report(tmp_path_factory):
-    folder = write_rates_folder(tmp_path_factory.mktemp("rates") / "invented")
-    return folder, write_report(folder, n_boot=N_BOOT)
-
-
-ALL_REPORTS = ("folder_report", "table_report", "rates_report")
-
-
-# ------------------------------------------------------------------ reading the HTML back
-
-class Page(HTMLParser):
-    """Every tag with its attributes, the number spans, and the visible text."""
-
-    def __init__(self, text: str) -> None:
-        super().__init__()
-        self.tags: list[tuple[str, dict[str, str]]] = []
-        self.numbers: list[tuple[str, str, str]] = []
-        self.text: list[str] = []
-        self.styles: list[str] = []
-        self._span: dict[str, str] | None = None
-        self._in_style = False
-        self.feed(text)
-
-    def handle_starttag(self, tag, attrs):
-        a = {k: v or "" for k, v in attrs}
-        self.tags.append((tag, a))
-        if tag == "span" and "data-key" in a:
-            self._span = {"key": a["data-key"], "fmt": a["data-fmt"], "text": ""}
-        self._in_style = tag == "style"
-
-    def handle_endtag(self, tag):
-        if tag == "span" and self._span is not None:
-            self.numbers.append((self._span["key"], self._span["fmt"], self._span["text"]))
-            self._span = None
-        self._in_style = False
-
-    def handle_data(self, data):
-        if self._span is not None:
-            self._span["text"] += data
-        if self._in_style:
-            self.styles.append(data)
-        else:
-            self.text.append(data)
-
-
-def page(paths) -> Page:
-    return Page(paths["html"].read_text(encoding="utf-8"))
-
-
-def value_at(fit: dict, key: str):
-    """The value at a dotted key of fit.json (written here, apart from the report's own lookup)."""
-    return functools.reduce(lambda v, part: v[int(part)] if isinstance(v, list) else v[part],
-                            key.split("."), fit)
-
-
-def expected_text(value, fmt: str) -> str:
-    """`value` as the report should show it: format spec, times the factor after '@' if any."""
-    spec, factor = (fmt.split("@") + ["1"])[:2]
-    value = value * float(factor)
-    return format(round(value) if spec.endswith("d") else value, spec)
 
 
 # ------------------------------------------------------------------ self-contained, embedded
-
-@pytest.mark.parametrize("report", ALL_REPORTS)
-def test_html_is_self_contained(report, request):
-    _, paths = request.getfixturevalue(report)
-    p = page(paths)
-    # HTML: a data: URI needs no fetch (RFC 2397); a fragment link (#id) stays in the page (RFC 3986 4.4)
-    for tag, attrs in p.tags:
-        assert tag not in ("script", "link", "iframe", "object", "embed", "base"), tag
-        for name in ("src", "href", "srcset", "poster", "data", "action", "formaction", "xlink:href"):
-            if name in attrs:
-                assert attrs[name].startswith(("data:", "#")), (tag, name, attrs[name][:80])
-    css = "".join(p.styles)
-    # CSS: url() and @import are the only ways a style sheet fetches (CSS 2.1, sections 4.3.4, 6.3)
-    assert "url(" not in css and "@import" not in css
-    csp = [a["content"] for t, a in p.tags if t == "meta" and a.get("http-equiv") == "Content-Security-Policy"]
-    assert csp and "default-src 'none'" in csp[0]
-
 
 @pytest.mark.parametrize("report", ALL_REPORTS)
 def test_every_figure_is_written_twice_and_embedded(report, request):
@@ -277,28 +104,6 @@ def test_stored_folder_report_answers_first_and_gives_provenance(folder_report):
     assert {"scaling", "cost", "loss", "dynamics"} <= names
 
 
-def test_report_leads_with_the_accuracy_warning(tmp_path):
-    # Invented table: a clean law T = 8000 K^-0.7 plans deep, where validation accuracy is clearly
-    # worse (every seed at K >= 8 below every seed at K <= 4).
-    rng = np.random.default_rng(3)
-    rows = ["depth,seed,iterations,validation_accuracy"]
-    for k in (1, 2, 4, 8, 16):
-        for s in range(3):
-            acc = (0.90 if k <= 4 else 0.70) + 0.005 * s
-            rows.append(f"{k},{s},{int(8000 * k ** -0.7 * math.exp(rng.normal(0, 0.03)))},{acc}")
-    table = tmp_path / "acc.csv"
-    table.write_text("\n".join(rows) + "\n")
-    paths = write_report(table, n_boot=100)
-    fit = json.loads(paths["fit"].read_text())
-    check = fit["planning"]["accuracy_check"]
-    assert check["clearly_below"] and "clearly lower validation accuracy" in fit["warnings"][0]
-    md = paths["md"].read_text(encoding="utf-8")
-    answer = md.split("## The answer", 1)[1].split("\n\n")
-    lead = [b.strip().lstrip("> ") for b in answer if b.strip()][:3]
-    assert lead[0].startswith("**Plan for") and lead[1].startswith("**Accuracy warning.**")
-    assert f"K = {check['best_depth']}" in lead[1]
-
-
 def test_stored_folder_report_states_its_cost_basis_and_rate_caution(folder_report):
     _, paths = folder_report
     fit = json.loads(paths["fit"].read_text())
@@ -316,22 +121,6 @@ def test_stored_folder_report_states_its_cost_basis_and_rate_caution(folder_repo
     assert "`train.learning_rate` block" in md
 
 
-def test_stored_folder_report_shows_the_snr_drop_per_depth(folder_report):
-    _, paths = folder_report
-    by_depth = json.loads(paths["fit"].read_text())["diffusion"]["by_depth"]
-    figure = next(p for p in paths["figures"] if p.name == "dynamics-by-depth.png")
-    assert figure.read_bytes()[:8] == PNG_SIGNATURE
-    md = paths["md"].read_text(encoding="utf-8")
-    drops = [r for r in by_depth if r["snr_drop_db"] is not None]
-    # the sentence quotes fit.json's drops at the shallowest and deepest depths
-    assert (f"the median SNR drop is {drops[0]['snr_drop_db']:.1f} dB at K = {drops[0]['depth']} "
-            f"and {drops[-1]['snr_drop_db']:.1f} dB at K = {drops[-1]['depth']}") in md
-    # brute force over fit.json's rows: the first depth from which every drop is under 2 dB
-    flat = next(r["depth"] for i, r in enumerate(drops)
-                if all(q["snr_drop_db"] < 2.0 for q in drops[i:]))
-    assert f"From K = {flat} on, the gradient SNR does not drop (median drop under 2 dB)." in md
-
-
 def test_table_report_goes_beside_the_table_and_marks_extrapolation(table_report):
     table, paths = table_report
     assert paths["html"].parent == table.with_name("timings-report")
@@ -346,42 +135,6 @@ def test_table_report_goes_beside_the_table_and_marks_extrapolation(table_report
     assert f"K = {worth['depth']}" in md and "[extrapolated]" in md
     assert "What was measured." in md and "{" not in md.split("## Provenance")[0]
     assert {f.stem for f in paths["figures"]} == {"scaling", "cost"}   # a table has no curves
-
-
-def test_rate_groups_tuning_and_rounds_are_shown(rates_report):
-    folder, paths = rates_report
-    fit = json.loads(paths["fit"].read_text())
-    assert len(fit["by_learning_rate"]) == 3 and fit["lr_interaction"]["lr_exponent"] is not None
-    names = {f.stem for f in paths["figures"]}
-    assert {"scaling", "rates", "tuning", "dynamics", "loss"} <= names
-    text = "".join(page(paths).text)
-    assert "depth partly acts as a learning-rate multiplier" in text
-    assert "fixed rate 0.02" in text and "rate tuned per depth" in text
-    assert "round 2: reversal interval narrow enough" in text
-    assert "Tuning trials" in text
-    # the headline and the per-depth table follow the tuned rate (records.primary_group)
-    assert fit["group"]["lr_mode"] == "tuned"
-    assert "the answer at the top is for the rate tuned per depth" in text
-    assert "the answer at the top uses the tuned rate" in text
-
-
-def test_scaling_plot_draws_censored_and_diverged_runs_as_such(rates_report):
-    folder, paths = rates_report
-    fit = json.loads(paths["fit"].read_text())
-    group = fit["by_learning_rate"][0]
-    assert group["group"]["learning_rate"] == 0.02
-    from depthplan.fitting.inputs import load_runs
-    runs = load_runs(folder)
-    ax = Figure().subplots()
-    group = FitGroup.from_dict(group)
-    drawn = {a.get_label(): a for a in plot_scaling(group, runs, ax, groups=[group])}
-    at = [r for r in runs if r.lr_mode == "fixed" and r.learning_rate == 0.02]
-    n_cens = sum(r.status == "censored" for r in at)
-    n_div = sum(r.status == "diverged" for r in at)
-    assert n_cens == 3 and n_div == 1
-    assert len(drawn["censored run: T ≥ budget"].get_offsets()) == n_cens
-    assert len(drawn["diverged run (no T)"].get_offsets()) == n_div
-    assert len(drawn["one run (seed)"].get_offsets()) == len(at) - n_cens - n_div
 
 
 # ------------------------------------------------------------------ fit.json: reused or refitted
