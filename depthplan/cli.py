@@ -147,7 +147,7 @@ def summary_url(cfg: object, args: argparse.Namespace) -> str:
     return resolve_url(args.storage, cfg.output.storage, output_folder(cfg, args.out))  # type: ignore[attr-defined]
 
 
-def _print_plan(fit: dict | None, folder: Path) -> None:
+def print_plan(fit: dict | None, folder: Path) -> None:
     """The depth to plan for, its basis and range (the first lines `depthplan fit` prints)."""
     from .errors import DataError
     from .fitting import fit_path
@@ -166,7 +166,7 @@ def _print_plan(fit: dict | None, folder: Path) -> None:
 def _cmd_run(args: argparse.Namespace) -> int:
     folder = _train_sweep(Path(args.config), args)
     if not getattr(args, "plan_only", False):
-        _print_plan(None, folder)
+        print_plan(None, folder)
     return 0
 
 
@@ -228,7 +228,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
               + (" (apart from their timings)" if reproduced else "")
               + (f"; {len(kept)} files that changed only in dates or the checkout's path keep their bytes" if kept else ""))
     print(f"demo report: {paths['html']}")
-    _print_plan(json.loads(Path(paths["fit"]).read_text(encoding="utf-8")), folder)
+    print_plan(json.loads(Path(paths["fit"]).read_text(encoding="utf-8")), folder)
     return 0
 
 

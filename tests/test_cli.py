@@ -100,7 +100,7 @@ def test_run_and_demo_end_with_the_lines_fit_starts_with(tmp_path: Path, capsys:
 
     import numpy as np
 
-    from depthplan.cli import _print_plan
+    from depthplan.cli import print_plan
     from depthplan.fitting.summary import format_summary, headline_lines
     from depthplan.records import RunResult, write_runs_jsonl
 
@@ -114,7 +114,7 @@ def test_run_and_demo_end_with_the_lines_fit_starts_with(tmp_path: Path, capsys:
                                          "widths": [16] * k}})
             for k in (1, 2, 4, 8, 16) for s in range(3)]
     write_runs_jsonl(runs, tmp_path / "runs.jsonl")
-    _print_plan(None, tmp_path)
+    print_plan(None, tmp_path)
     out = capsys.readouterr().out
     fit = json.loads((tmp_path / "fit.json").read_text())
     head = headline_lines(fit)

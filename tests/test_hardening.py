@@ -34,7 +34,7 @@ PG = "postgresql+psycopg2"
 def test_a_real_driver_error_carries_no_password() -> None:
     pytest.importorskip("psycopg2")
     sqlalchemy = pytest.importorskip("sqlalchemy")
-    from depthplan.sweep.storage import _rdb
+    from depthplan.sweep.storage import open_rdb_storage
 
     for url, secrets in [(f"{PG}://u:p%40ss@127.0.0.1:1/db?password=hunter2", ("hunter2", "p@ss", "p%40ss")),
                          (f"{PG}://u:pa@ss@127.0.0.1:1/db?sslpassword=hunter2", ("hunter2", "pa@ss", "ss@"))]:
@@ -46,7 +46,7 @@ def test_a_real_driver_error_carries_no_password() -> None:
         else:
             pytest.fail("nothing should listen on port 1")
         with pytest.raises(StoreError) as info:
-            _rdb(url)
+            open_rdb_storage(url)
         for text in (mapped, str(info.value)):
             assert "127.0.0.1" in text and "\n" not in text
             for secret in secrets:

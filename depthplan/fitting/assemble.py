@@ -74,11 +74,11 @@ from scipy import stats
 from ..errors import DataError
 from ..records import STATUSES, ReversalStatus, RunResult, group_runs, primary_group, write_text_atomic
 from .depthlaw import (
-    _Arrays,
-    _ci,
+    RunArrays,
+    percentile_ci,
     _gain,
     _location,
-    _power_law_block,
+    power_law_block,
     _reversal_block,
     _with_alpha,
     summarize_depths,
@@ -163,7 +163,7 @@ def _fit_group(runs: list[RunResult], *, save_fraction: float, n_boot: int, seed
     return fit
 
 
-def _usable_runs(runs: list[RunResult], name: str) -> tuple[list[RunResult], list[dict[str, Any]], _Arrays, list[int]]:
+def _usable_runs(runs: list[RunResult], name: str) -> tuple[list[RunResult], list[dict[str, Any]], RunArrays, list[int]]:
     """Stuck runs, the per-depth table and the arrays the law is fitted on; DataError when too thin."""
     stuck = find_stuck(runs)
     per_depth = summarize_depths(runs, stuck)
@@ -173,7 +173,7 @@ def _usable_runs(runs: list[RunResult], name: str) -> tuple[list[RunResult], lis
                         f"({', '.join(map(str, swept))}); a depth law needs at least three")
     stuck_ids = {id(r) for r in stuck}
     used = [r for r in runs if r.status in ("converged", "censored") and id(r) not in stuck_ids]
-    d = _Arrays(np.array([r.depth for r in used], float),
+    d = RunArrays(np.array([r.depth for r in used], float),
                 np.array([r.iterations for r in used], float),
                 np.array([r.status == "censored" for r in used], bool))
     depths = sorted({int(k) for k in d.K})
@@ -186,7 +186,7 @@ def _usable_runs(runs: list[RunResult], name: str) -> tuple[list[RunResult], lis
     return stuck, per_depth, d, depths
 
 
-def _law_and_reversal(d: _Arrays, depths: list[int], n_boot: int, seed: int) -> tuple[Any, ...]:
+def _law_and_reversal(d: RunArrays, depths: list[int], n_boot: int, seed: int) -> tuple[Any, ...]:
     """The descending span, its power law, depth gain, the reversal verdict and the model selection."""
     rev, seg_draws = _reversal_block(d, depths, n_boot, seed)
     if rev["candidate"]:
@@ -195,10 +195,10 @@ def _law_and_reversal(d: _Arrays, depths: list[int], n_boot: int, seed: int) -> 
         loc = _location(d, depths)
         span = [k for k in depths if k <= depths[int(np.argmin(loc))]]
         span = span if len(span) >= 3 else depths
-    pl, _ = _power_law_block(d.subset(d.K <= span[-1]), n_boot, seed + 2)
+    pl, _ = power_law_block(d.subset(d.K <= span[-1]), n_boot, seed + 2)
     pl = _with_alpha(pl)
     if len(span) >= 3:
-        pl["without_shallowest"], _ = _power_law_block(
+        pl["without_shallowest"], _ = power_law_block(
             d.subset((d.K > span[0]) & (d.K <= span[-1])), n_boot, seed + 3)
         _with_alpha(pl["without_shallowest"])
     else:
@@ -214,7 +214,7 @@ def _law_and_reversal(d: _Arrays, depths: list[int], n_boot: int, seed: int) -> 
     return span, pl, gain, status, reversal, sel
 
 
-def _select_models(d: _Arrays, rising: bool, n_boot: int, seed: int) -> dict[str, Any]:
+def _select_models(d: RunArrays, rising: bool, n_boot: int, seed: int) -> dict[str, Any]:
     """Fit the candidate models to `d`, weigh them, and refit them on bootstrap replicates."""
     names = eligible_models(len(np.unique(d.K)), rising)
     cands = fit_candidates(d, names)
@@ -231,7 +231,7 @@ def _reversal_from_models(reversal: dict[str, Any], sel: dict[str, Any]) -> None
     for name in best:
         k = float(k_star(sel["cands"][name].row)[0])
         if math.isfinite(k):
-            reversal.update(depth=k, depth_ci=_ci(sel["boot"]["k_star"]), model=name)
+            reversal.update(depth=k, depth_ci=percentile_ci(sel["boot"]["k_star"]), model=name)
             reversal["note"] = f"T is lowest near K = {k:.1f} and rises past it"
             return
 
@@ -275,7 +275,7 @@ def _named_params(name: str, row: np.ndarray) -> dict[str, float]:
     return {"A": math.exp(p[0]), "s": p[1], "B": math.exp(p[2]), "r": p[3]}
 
 
-def _reversal_fields(rev: dict[str, Any], status: str, d: _Arrays, depths: list[int],
+def _reversal_fields(rev: dict[str, Any], status: str, d: RunArrays, depths: list[int],
                      seg_draws: np.ndarray | None) -> dict[str, Any]:
     out = {key: rev.get(key) for key in ("falling_slope", "rising_slope", "rising_slope_ci",
                                          "bic_single", "bic_segmented", "n_depths_past")}

@@ -1,9 +1,9 @@
 """The depth law measured on one group of runs, with bootstrap intervals (no torch).
 
-`summarize_depths` gives the per-depth table; `_power_law_block` and
+`summarize_depths` gives the per-depth table; `power_law_block` and
 `_reversal_block` fit the estimators of `depthplan.estimators` to the runs
 and refit them on bootstrap resamples (`_draws`: seeds within each depth, or
-residuals where a depth has one run; `_ci`: percentile intervals of the
+residuals where a depth has one run; `percentile_ci`: percentile intervals of the
 draws). `depthplan.planning` reads the planning figures off the same draws,
 and `depthplan.fitting` decides which model a group's figures use and
 assembles fit.json.
@@ -110,7 +110,7 @@ def _draws(x: np.ndarray, y: np.ndarray, c: np.ndarray, n_boot: int,
     return x, np.where(over, y[None], ystar), over, "residuals"
 
 
-def _ci(values: np.ndarray, level: float = 0.95) -> list[float] | None:
+def percentile_ci(values: np.ndarray, level: float = 0.95) -> list[float] | None:
     v = np.asarray(values, float)
     v = v[np.isfinite(v)]
     if len(v) < 10:
@@ -119,14 +119,14 @@ def _ci(values: np.ndarray, level: float = 0.95) -> list[float] | None:
     return [float(lo), float(hi)]
 
 
-def _alpha(s: float | None) -> float | None:
+def alpha_of(s: float | None) -> float | None:
     return None if s is None or not s < 1 else 1.0 / (1.0 - s)
 
 
 # ---------------------------------------------------------------- one group of runs
 
 @dataclass
-class _Arrays:
+class RunArrays:
     K: np.ndarray
     T: np.ndarray
     C: np.ndarray
@@ -139,11 +139,11 @@ class _Arrays:
     def y(self) -> np.ndarray:
         return np.log(self.T)
 
-    def subset(self, mask: np.ndarray) -> "_Arrays":
-        return _Arrays(self.K[mask], self.T[mask], self.C[mask])
+    def subset(self, mask: np.ndarray) -> "RunArrays":
+        return RunArrays(self.K[mask], self.T[mask], self.C[mask])
 
 
-def _power_law_block(d: _Arrays, n_boot: int, seed: int) -> tuple[dict[str, Any], np.ndarray]:
+def power_law_block(d: RunArrays, n_boot: int, seed: int) -> tuple[dict[str, Any], np.ndarray]:
     """The power law over the runs in `d`, with bootstrap; returns (fields, (B, 2) draws)."""
     pl = fit_power_law(d.K, d.T, d.C)
     rng = np.random.default_rng(seed)
@@ -152,7 +152,7 @@ def _power_law_block(d: _Arrays, n_boot: int, seed: int) -> tuple[dict[str, Any]
     res = _tobit_batch(_design_power(xb), Yb, Cb, max_iter=60)
     draws = np.where(res["converged"][:, None], res["beta"], np.nan)
     t = stats.t.ppf(0.975, max(pl.n - 2, 1))
-    boot_ci = _ci(draws[:, 1])
+    boot_ci = percentile_ci(draws[:, 1])
     ci_t = [pl.slope - t * pl.slope_se, pl.slope + t * pl.slope_se]
     ok = np.isfinite(draws).all(1)
     cov = np.cov(draws[ok].T) if ok.sum() > 10 else np.array(pl.cov)
@@ -175,12 +175,12 @@ def _gain(block: dict[str, Any]) -> bool:
 
 def _with_alpha(block: dict[str, Any]) -> dict[str, Any]:
     gain = _gain(block)
-    block["alpha"] = _alpha(block["slope"]) if gain else None
-    block["alpha_ci"] = [_alpha(block["slope_ci"][0]), _alpha(block["slope_ci"][1])] if gain else None
+    block["alpha"] = alpha_of(block["slope"]) if gain else None
+    block["alpha_ci"] = [alpha_of(block["slope_ci"][0]), alpha_of(block["slope_ci"][1])] if gain else None
     return block
 
 
-def _location(d: _Arrays, depths: list[int]) -> np.ndarray:
+def _location(d: RunArrays, depths: list[int]) -> np.ndarray:
     """Per-depth median log T, censored runs ranked last (inf where unknown)."""
     out = []
     for k in depths:
@@ -190,7 +190,7 @@ def _location(d: _Arrays, depths: list[int]) -> np.ndarray:
     return np.array(out)
 
 
-def _reversal_block(d: _Arrays, depths: list[int], n_boot: int,
+def _reversal_block(d: RunArrays, depths: list[int], n_boot: int,
                     seed: int) -> tuple[dict[str, Any], np.ndarray | None]:
     """Segmented fit on every depth against the single law; returns (fields, (B, 4) draws)."""
     single = fit_power_law(d.K, d.T, d.C)
@@ -209,10 +209,10 @@ def _reversal_block(d: _Arrays, depths: list[int], n_boot: int,
     psi_b, beta_b, _ = _segmented_profile(xb, Yb, Cb, _breakpoint_grid(d.x))
     draws = np.column_stack([beta_b, psi_b])                       # (a, s, d, psi)
     n_past = sum(k > seg.breakpoint * (1 + 1e-9) for k in depths)
-    r_ci = _ci(beta_b[:, 1] + beta_b[:, 2])
+    r_ci = percentile_ci(beta_b[:, 1] + beta_b[:, 2])
     out.update(bic_segmented=bic(seg.loglik, 5, len(d.K)), falling_slope=seg.falling_slope,
                rising_slope=seg.rising_slope, rising_slope_ci=r_ci, n_depths_past=n_past,
-               breakpoint=seg.breakpoint, breakpoint_ci=_ci(np.exp(psi_b)),
+               breakpoint=seg.breakpoint, breakpoint_ci=percentile_ci(np.exp(psi_b)),
                point=[seg.intercept, seg.falling_slope, d_coef, psi])
     reasons = []
     if not seg.falling_slope < 0:

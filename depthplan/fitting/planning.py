@@ -19,7 +19,7 @@ from scipy import optimize
 
 from .accuracy import accuracy_check
 from .cost import choose_cost, cost_basis_of, cost_label, cost_per_update
-from .depthlaw import _ci
+from .depthlaw import percentile_ci
 
 _K_MAX = 1000          # deepest depth the planning figures search
 MODELS = ("power_law", "saturating", "segmented", "two_term")   # code of a "selected" row = index
@@ -156,7 +156,7 @@ def _planning_block(model: str, point: np.ndarray, draws: np.ndarray, depths: li
 
     def figure(point_value: float, boot: np.ndarray) -> dict[str, Any]:
         value = None if not np.isfinite(point_value) else int(point_value)
-        ci = _ci(boot)                       # whole depths: round the interval outwards
+        ci = percentile_ci(boot)                       # whole depths: round the interval outwards
         ci = None if ci is None else [math.floor(ci[0]), math.ceil(ci[1])]
         return {"depth": value, "ci": ci,
                 "extrapolated": value is None or not lo <= value <= hi}

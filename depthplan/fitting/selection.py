@@ -41,7 +41,7 @@ from typing import Any, Sequence
 import numpy as np
 from scipy import stats
 
-from .depthlaw import _Arrays, _draws
+from .depthlaw import RunArrays, _draws
 from .estimators import (
     _breakpoint_grid,
     _design_power,
@@ -100,7 +100,7 @@ def _powers_rows(name: str, theta: np.ndarray) -> np.ndarray:
     return rows
 
 
-def fit_candidates(d: _Arrays, names: Sequence[str]) -> dict[str, Candidate]:
+def fit_candidates(d: RunArrays, names: Sequence[str]) -> dict[str, Candidate]:
     """Point fits of the named models to the runs in `d` (same runs for each)."""
     n, x, y, c = len(d.K), d.x, d.y, d.C
     out: dict[str, Candidate] = {}
@@ -186,7 +186,7 @@ def reselect(refits: dict[str, tuple[np.ndarray, np.ndarray]], n: int,
     return rows[j, np.arange(rows.shape[1])], np.array(names)[j]
 
 
-def bootstrap_selection(d: _Arrays, cands: dict[str, Candidate], chosen: str, n_boot: int,
+def bootstrap_selection(d: RunArrays, cands: dict[str, Candidate], chosen: str, n_boot: int,
                         seed: int) -> dict[str, Any]:
     """Refit and reselect on `n_boot` replicates; the draws every interval is read from.
 
@@ -206,7 +206,7 @@ def bootstrap_selection(d: _Arrays, cands: dict[str, Candidate], chosen: str, n_
 
 # ---------------------------------------------------------------- lack of fit
 
-def lack_of_fit(d: _Arrays, row: np.ndarray, n_params: int) -> dict[str, Any]:
+def lack_of_fit(d: RunArrays, row: np.ndarray, n_params: int) -> dict[str, Any]:
     """The model against each depth's centre of log T (see the module docstring)."""
     depths = sorted({float(k) for k in d.K})
     resid, n_pe = 0.0, 0

@@ -10,7 +10,7 @@ from typing import Any, Sequence
 
 from ..fit_record import FitResult, Planning, Reversal, Transfer
 from .cost import cost_label
-from .depthlaw import _Arrays
+from .depthlaw import RunArrays
 
 # ---------------------------------------------------------------- wording
 
@@ -28,7 +28,7 @@ def _describe(group: dict[str, Any]) -> str:
 
 # ---------------------------------------------------------------- warnings of one group
 
-def _group_warnings(fit: dict[str, Any], d: _Arrays, eval_every: int | None) -> list[str]:
+def _group_warnings(fit: dict[str, Any], d: RunArrays, eval_every: int | None) -> list[str]:
     out: list[str] = []
     depths, rows = fit["depths_swept"], fit["per_depth"]
     pl, rev, plan = fit["power_law"], fit["reversal"], fit["planning"]

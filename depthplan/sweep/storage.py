@@ -78,7 +78,7 @@ def store_failures(url: str) -> Iterator[None]:
 
 def tuning_storage(url: str) -> Any:
     """Storage for learning-rate searches: the same database, no heartbeats (only `run` tunes)."""
-    return _rdb(url, heartbeat=False)
+    return open_rdb_storage(url, heartbeat=False)
 
 
 def local_url(folder: Path) -> str:
@@ -92,7 +92,7 @@ def _quiet_optuna() -> Any:
     return optuna
 
 
-def _rdb(url: str, *, heartbeat: bool = True) -> Any:
+def open_rdb_storage(url: str, *, heartbeat: bool = True) -> Any:
     """An Optuna RDBStorage (with heartbeats and retry unless told), safe as a queue on SQLite too."""
     optuna = _quiet_optuna()
     from optuna.exceptions import ExperimentalWarning
@@ -158,7 +158,7 @@ class SweepStore:
     def __init__(self, url: str, study_name: str, *, create: bool = False) -> None:
         optuna = _quiet_optuna()
         self.url, self.name = url, study_name
-        self.storage = _rdb(url)
+        self.storage = open_rdb_storage(url)
         from sqlalchemy.exc import SQLAlchemyError
 
         try:
@@ -379,7 +379,7 @@ def _alive(pid: int) -> bool:
 def study_names(url: str) -> list[str]:
     """Names of the studies (sweeps and their tuning searches) in a store."""
     optuna = _quiet_optuna()
-    return [s.study_name for s in optuna.get_all_study_summaries(_rdb(url, heartbeat=False))]
+    return [s.study_name for s in optuna.get_all_study_summaries(open_rdb_storage(url, heartbeat=False))]
 
 
 def check_url(url: str) -> None:

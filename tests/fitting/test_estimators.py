@@ -23,8 +23,8 @@ def _coverage(reps: int, budget: float, n_boot: int, seed: int) -> tuple[float, 
     hits_boot = hits_t = 0
     for i in range(reps):
         runs = synthetic_runs(power(8000, -1.0), [1, 2, 3, 4, 6, 8], 8, 0.3, rng, budget=budget)
-        d = depthlaw._Arrays(*arrays(runs))
-        block, _ = depthlaw._power_law_block(d, n_boot, seed=i)
+        d = depthlaw.RunArrays(*arrays(runs))
+        block, _ = depthlaw.power_law_block(d, n_boot, seed=i)
         lo, hi = block["slope_ci"]
         hits_boot += lo <= -1.0 <= hi
         lo, hi = block["slope_ci_analytic"]

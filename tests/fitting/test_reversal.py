@@ -81,7 +81,7 @@ def test_warns_when_segmented_and_smooth_models_disagree(monkeypatch):
 
 def test_alpha_one_half_means_slope_minus_one():
     # Common practice (DESIGN.md sections 2-3): free diffusion, alpha = 1/2, gives s = -1.
-    assert depthlaw._alpha(-1.0) == 0.5
+    assert depthlaw.alpha_of(-1.0) == 0.5
     rng = np.random.default_rng(19)
     fit = F.fit_runs(synthetic_runs(power(5000, -1.0), range(1, 9), 6, 0.15, rng), n_boot=200)
     lo, hi = fit["power_law"]["alpha_ci"]

@@ -15,7 +15,7 @@ from scipy import optimize, stats
 
 from depthplan import fitting as F
 from depthplan.fitting import selection as S
-from depthplan.fitting.depthlaw import _Arrays, _ci
+from depthplan.fitting.depthlaw import RunArrays, percentile_ci
 
 from fitting_data import arrays, power, synthetic_runs
 
@@ -136,10 +136,10 @@ def test_reversal_depth_interval_covers_the_truth_with_model_choice_inside_the_b
     for i in range(reps):
         K, T, C = arrays(synthetic_runs(lambda k: math.log(4000 / k + 40 * k), depths, 4, 0.1,
                                         rng))
-        d = _Arrays(K, T, C)
+        d = RunArrays(K, T, C)
         cands = S.fit_candidates(d, S.eligible_models(len(depths), rising=True))
         chosen = min(cands, key=lambda k: cands[k].aicc)
         boot = S.bootstrap_selection(d, cands, chosen, 30, seed=i)
-        ci = _ci(boot["k_star"])
+        ci = percentile_ci(boot["k_star"])
         hits += ci is not None and ci[0] <= 10.0 <= ci[1]
     assert hits / reps >= 0.8
