@@ -7,7 +7,7 @@ Everything right of the largest proxy used in the fit is extrapolation and lies 
 """
 from __future__ import annotations
 
-from typing import Sequence
+from typing import Any, Sequence
 
 from matplotlib.artist import Artist
 from matplotlib.axes import Axes
@@ -84,10 +84,15 @@ def _draw_check(ax: Axes, t: Transfer, axis: str, quantity: str, name: str) -> l
             (v.measured, 1.04, F.VERMILLION, "black", 0.8, "held-out size: measured")):
         value = (block or {}).get(quantity)
         if value is not None:
-            out.append(ax.errorbar([x * shift], [value], yerr=_yerr(value, block.get(f"{quantity}_ci")),
-                                   fmt="D", ms=6, mfc=face, mec=edge, mew=mew, ecolor=edge,
-                                   capsize=3, zorder=6, label=label))
+            out.append(_point(ax, x * shift, value, block.get(f"{quantity}_ci"), "D", 6, face, edge, mew, edge, 6, label))
     return out
+
+
+def _point(ax: Axes, x: float, value: float, ci: Any, fmt: str, ms: float, face: str, edge: str, mew: float,
+           bar: str, z: int, label: str) -> Artist:
+    """One marked point with its interval as error bars."""
+    return ax.errorbar([x], [value], yerr=_yerr(value, ci), fmt=fmt, ms=ms, mfc=face, mec=edge, mew=mew,
+                       ecolor=bar, capsize=3, zorder=z, label=label)
 
 
 def _draw_target(ax: Axes, t: Transfer, axis: str, quantity: str, name: str) -> list[Artist]:
@@ -99,7 +104,6 @@ def _draw_target(ax: Axes, t: Transfer, axis: str, quantity: str, name: str) -> 
     value = getattr(tg, quantity)
     if given(value):
         ci = getattr(tg, f"{quantity}_ci")
-        out.append(ax.errorbar([x], [value], yerr=_yerr(value, ci if given(ci) else None),
-                               fmt="*", ms=11, mfc=F.ORANGE, mec="black", mew=0.8, ecolor=F.ORANGE,
-                               capsize=3, zorder=7, label="target: carried along size (95 % interval)"))
+        out.append(_point(ax, x, value, ci if given(ci) else None, "*", 11, F.ORANGE, "black", 0.8, F.ORANGE, 7,
+                          "target: carried along size (95 % interval)"))
     return out
