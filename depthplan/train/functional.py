@@ -41,6 +41,7 @@ from .convergence import Criterion
 from .datasets import Dataset
 from .families import branch_multiplier, build_network, network_input_shape
 from .probes import gradient_snr_db
+from .residual import ResidualMaths
 
 #: Largest (n_seeds x rows x activations per row) block of one evaluation pass, in values.
 EVAL_BLOCK = 1 << 22
@@ -48,6 +49,7 @@ EVAL_BLOCK = 1 << 22
 GATHER_BLOCK = 1 << 23
 
 Forward = Callable[[list[torch.Tensor], torch.Tensor], torch.Tensor]
+Gradients = Callable[[list[torch.Tensor], torch.Tensor, torch.Tensor], list[torch.Tensor]]
 _ACT = {"tanh": torch.tanh, "relu": F.relu, "gelu": F.gelu, "sigmoid": torch.sigmoid}
 
 
@@ -60,10 +62,11 @@ class Members:
 
     def __init__(self, params: list[torch.Tensor], names: list[str], buffers: list[torch.Tensor],
                  buffer_names: list[str], base: nn.Module, call: Callable[..., torch.Tensor] | None = None,
-                 direct: Forward | None = None) -> None:
+                 direct: Forward | None = None, grad: Gradients | None = None) -> None:
         self.params, self.names, self.buffers, self.buffer_names = params, names, buffers, buffer_names
         self.base = base                     # the module on the meta device, for `functional_call`
         self._direct = direct
+        self.grad = grad                     # a hand-written backward, if the family has one
         if call is not None:
             self._batched = vmap(call, in_dims=(0, 0, 0))
             self._shared = vmap(call, in_dims=(0, 0, None))
@@ -115,6 +118,10 @@ def _residual_members(nets: list[nn.Module], model: ModelConfig, depth: int) -> 
     names, bnames = list(params), list(buffers)
     at = {n: i for i, n in enumerate(names)}
     act, a, norm = _ACT[model.activation], branch_multiplier(model, depth), model.norm == "layer"
+    if not norm:                   # the hand-written backward (residual.py), no autograd
+        maths = ResidualMaths(depth, model.activation, a)
+        return Members([params[n] for n in names], names, [buffers[n] for n in bnames], bnames,
+                       copy.deepcopy(nets[0]).to("meta"), direct=maths.logits, grad=maths.gradients)
 
     def lin(p: list[torch.Tensor], h: torch.Tensor, key: str) -> torch.Tensor:
         # h (n_seeds, rows, fan_in) -> (n_seeds, rows, fan_out), as nn.Linear: h W^T + b
@@ -189,6 +196,9 @@ def _loss(logits: torch.Tensor, y: torch.Tensor) -> torch.Tensor:
 
 def _gradients(members: Members, x: torch.Tensor, y: torch.Tensor) -> tuple[torch.Tensor, ...]:
     """Every seed's gradient of its mean minibatch loss, per stacked tensor."""
+    if members.grad is not None:
+        with torch.no_grad():
+            return tuple(members.grad(members.params, x, y))
     with torch.enable_grad():
         return torch.autograd.grad(_loss(members.forward(members.params, x), y), members.params)
 
@@ -204,20 +214,26 @@ class StackedOptimizer:
 
     @torch.no_grad()
     def step(self, params: list[torch.Tensor], grads: tuple[torch.Tensor, ...]) -> None:
+        """One update of every stacked tensor, each rule as one `torch._foreach_*` call per operation."""
         self.t += 1
-        lr = self.lr
-        for p, g, st in zip(params, grads, self.state):
-            if self.kind == "adam":
-                b1, b2, eps = 0.9, 0.999, 1e-8
-                st[0].lerp_(g, 1 - b1)
-                st[1].mul_(b2).addcmul_(g, g, value=1 - b2)
-                denom = (st[1].sqrt() / (1 - b2 ** self.t) ** 0.5).add_(eps)
-                p.addcdiv_(st[0], denom, value=-lr / (1 - b1 ** self.t))
-            elif st:
-                st[0].mul_(self.mu).add_(g)      # velocity = mu * velocity + grad (torch's first step: grad)
-                p.add_(st[0], alpha=-lr)
-            else:
-                p.add_(g, alpha=-lr)
+        lr, grads = self.lr, list(grads)
+        if self.kind == "adam":
+            b1, b2, eps = 0.9, 0.999, 1e-8
+            m, v = [st[0] for st in self.state], [st[1] for st in self.state]
+            torch._foreach_lerp_(m, grads, 1 - b1)
+            torch._foreach_mul_(v, b2)
+            torch._foreach_addcmul_(v, grads, grads, value=1 - b2)
+            denom = torch._foreach_sqrt(v)
+            torch._foreach_div_(denom, (1 - b2 ** self.t) ** 0.5)
+            torch._foreach_add_(denom, eps)
+            torch._foreach_addcdiv_(params, m, denom, value=-lr / (1 - b1 ** self.t))
+        elif self.mu > 0:
+            velocity = [st[0] for st in self.state]
+            torch._foreach_mul_(velocity, self.mu)   # velocity = mu * velocity + grad (torch's first step: grad)
+            torch._foreach_add_(velocity, grads)
+            torch._foreach_add_(params, velocity, alpha=-lr)
+        else:
+            torch._foreach_add_(params, grads, alpha=-lr)
 
     def keep(self, rows: torch.Tensor) -> None:
         self.state = [[s.index_select(0, rows) for s in st] for st in self.state]
