@@ -141,6 +141,30 @@ def _residual_members(nets: list[nn.Module], model: ModelConfig, depth: int) -> 
                    copy.deepcopy(nets[0]).to("meta"), direct=forward)
 
 
+def _conv_members(nets: list[nn.Module], model: ModelConfig, depth: int) -> Members:
+    """The built-in conv family as grouped convolutions on its stacked weights (no vmap).
+
+    The seeds ride in the channel axis, (rows, n_seeds * channels, H, W), and each 3x3 convolution
+    is one `F.conv2d` with groups = n_seeds (what vmap's batching rule calls too, minus its
+    per-call wrapping); backward by autograd.
+    """
+    params, buffers = stack_module_state(nets)
+    names, bnames = list(params), list(buffers)
+    act = _ACT[model.activation]
+
+    def forward(p: list[torch.Tensor], x: torch.Tensor) -> torch.Tensor:
+        n_seeds, rows = x.shape[:2]
+        h = x.transpose(0, 1).reshape(rows, -1, *x.shape[3:])            # (rows, n_seeds * c_in, H, W)
+        for k in range(depth):
+            w, b = p[2 * k], p[2 * k + 1]                                 # (n_seeds, c_out, c_in, 3, 3), (n_seeds, c_out)
+            h = act(F.conv2d(h, w.reshape(-1, *w.shape[2:]), b.reshape(-1), padding=1, groups=n_seeds))
+        pooled = h.mean(dim=(-2, -1)).view(rows, n_seeds, -1).transpose(0, 1)   # (n_seeds, rows, channels)
+        return torch.baddbmm(p[-1].unsqueeze(1), pooled, p[-2].transpose(1, 2))
+
+    return Members([params[n] for n in names], names, [buffers[n] for n in bnames], bnames,
+                   copy.deepcopy(nets[0]).to("meta"), direct=forward)
+
+
 def check_model(cfg: ModelConfig, data: Dataset, depths: tuple[int, ...]) -> None:
     """Build the network at the shallowest and deepest depth and run two seeds of it batched, or raise.
 
@@ -186,6 +210,8 @@ def build_members(model: ModelConfig, data: Dataset, depth: int, seeds: tuple[in
     nets = [build_network(model, data.input_shape, depth, data.n_classes, s, dtype) for s in seeds]
     if model.family_name == "residual":
         return _residual_members(nets, model, depth)
+    if model.family_name == "conv":
+        return _conv_members(nets, model, depth)
     return stack_networks(nets)
 
 
