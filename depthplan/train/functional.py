@@ -42,6 +42,7 @@ from .datasets import Dataset
 from .families import branch_multiplier, build_network, network_input_shape
 from .probes import gradient_snr_db
 from .residual import ResidualMaths
+from .sequential import conv, grouped, linear, seed_major, sequential_forward
 
 #: Largest (n_seeds x rows x activations per row) block of one evaluation pass, in values.
 EVAL_BLOCK = 1 << 22
@@ -105,6 +106,9 @@ def stack_networks(nets: list[nn.Module]) -> Members:
     params, buffers = stack_module_state(nets)
     base = copy.deepcopy(nets[0]).to("meta")
     names, bnames = list(params), list(buffers)
+    direct = sequential_forward(base, names, len(bnames))
+    if direct is not None:         # an nn.Sequential of common layers: batched operations, no vmap
+        return Members([params[n] for n in names], names, [], [], base, direct=direct)
 
     def call(p: list[torch.Tensor], b: list[torch.Tensor], x: torch.Tensor) -> torch.Tensor:
         return functional_call(base, ({**dict(zip(names, p)), **dict(zip(bnames, b))}), (x,))
@@ -142,24 +146,17 @@ def _residual_members(nets: list[nn.Module], model: ModelConfig, depth: int) -> 
 
 
 def _conv_members(nets: list[nn.Module], model: ModelConfig, depth: int) -> Members:
-    """The built-in conv family as grouped convolutions on its stacked weights (no vmap).
-
-    The seeds ride in the channel axis, (rows, n_seeds * channels, H, W), and each 3x3 convolution
-    is one `F.conv2d` with groups = n_seeds (what vmap's batching rule calls too, minus its
-    per-call wrapping); backward by autograd.
-    """
+    """The built-in conv family as grouped convolutions on its stacked weights (`sequential.conv`, no vmap)."""
     params, buffers = stack_module_state(nets)
     names, bnames = list(params), list(buffers)
     act = _ACT[model.activation]
 
     def forward(p: list[torch.Tensor], x: torch.Tensor) -> torch.Tensor:
-        n_seeds, rows = x.shape[:2]
-        h = x.transpose(0, 1).reshape(rows, -1, *x.shape[3:])            # (rows, n_seeds * c_in, H, W)
+        n_seeds, h = x.shape[0], grouped(x)                               # (rows, n_seeds * c_in, H, W)
         for k in range(depth):
-            w, b = p[2 * k], p[2 * k + 1]                                 # (n_seeds, c_out, c_in, 3, 3), (n_seeds, c_out)
-            h = act(F.conv2d(h, w.reshape(-1, *w.shape[2:]), b.reshape(-1), padding=1, groups=n_seeds))
-        pooled = h.mean(dim=(-2, -1)).view(rows, n_seeds, -1).transpose(0, 1)   # (n_seeds, rows, channels)
-        return torch.baddbmm(p[-1].unsqueeze(1), pooled, p[-2].transpose(1, 2))
+            h = act(conv(h, p[2 * k], p[2 * k + 1], n_seeds, padding=1))
+        pooled = seed_major(h.mean(dim=(-2, -1), keepdim=True), n_seeds).flatten(2)   # (n_seeds, rows, channels)
+        return linear(pooled, p[-2], p[-1])
 
     return Members([params[n] for n in names], names, [buffers[n] for n in bnames], bnames,
                    copy.deepcopy(nets[0]).to("meta"), direct=forward)
