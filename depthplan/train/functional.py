@@ -6,11 +6,14 @@ modules (`families.build_network`, one per seed, initialised from the seed) are 
 `torch.vmap` (PyTorch's model-ensembling recipe): no hand-written maths, so any module that vmap
 can batch works. The loss is the sum over seeds of each seed's mean cross-entropy, so one autograd
 pass gives every seed its own gradient. The optimiser applies torch.optim's SGD, momentum and Adam
-rules to each stacked tensor. Each seed keeps its own minibatch order (`loop.BatchStream`), so its
-trajectory equals a plain per-seed `torch.optim` loop (`reference.train_plain`; tests/train).
+rules to the stacked tensors (one `torch._foreach_*` call per operation). Each seed keeps its own
+minibatch order (`loop.BatchStream`), so its trajectory equals a plain per-seed `torch.optim` loop (`reference.train_plain`; tests/train).
 
-The built-in residual family skips vmap: its forward pass is a few batched matrix products on the
-stacked weights (same maths, measured faster: benchmarks/family_speed.py).
+Three cases skip vmap (same maths, measured faster: benchmarks/family_speed.py): the built-in
+residual family runs as batched matrix products on the stacked weights, without norm with a
+hand-written backward (`residual.py`), with `norm: layer` through autograd; the built-in conv
+family and a factory module that is an `nn.Sequential` of common layers run as batched products
+and grouped convolutions (`sequential.py`) through autograd. Every other module goes through vmap.
 
 Probes: per weight tensor (every parameter with two or more axes, in the module's order: input
 side first for the built-in families), the displacement ||W_t - W_0||_F, the gradient SNR over a

@@ -52,8 +52,18 @@ class ResidualMaths:
         return hs, us, torch.baddbmm(p[-1].unsqueeze(2), p[-2], h.transpose(1, 2))
 
     def logits(self, p: list[torch.Tensor], x: torch.Tensor) -> torch.Tensor:
-        """Logits (n_seeds, rows, n_classes) of x (n_seeds, rows, n_in)."""
-        return self.forward(p, x)[2].transpose(1, 2)
+        """Logits (n_seeds, rows, n_classes) of x (n_seeds, rows, n_in), without autograd.
+
+        The evaluation's pass: two activation buffers updated in place instead of a fresh tensor per
+        block (a large fresh tensor costs its page faults every time)."""
+        a = self.a
+        with torch.no_grad():
+            h = torch.baddbmm(p[1].unsqueeze(1), x, p[0].transpose(1, 2))
+            u = torch.empty_like(h)
+            for k in range(self.depth):
+                u = _activate(self.act, u.copy_(h))
+                h.add_(p[3 + 2 * k].unsqueeze(1), alpha=a).baddbmm_(u, p[2 + 2 * k].transpose(1, 2), alpha=a)
+            return torch.baddbmm(p[-1].unsqueeze(1), h, p[-2].transpose(1, 2))
 
     def gradients(self, p: list[torch.Tensor], x: torch.Tensor, y: torch.Tensor) -> list[torch.Tensor]:
         """Every seed's gradient of its mean cross-entropy on (x, y), per stacked parameter.
