@@ -28,6 +28,13 @@ class ResidualMaths:
 
     def __init__(self, depth: int, act: str, a: float) -> None:
         self.depth, self.act, self.a = depth, act, a
+        self.one = torch.ones(1, 1, 1)
+
+    def _one(self, logits: torch.Tensor) -> torch.Tensor:
+        """A 1 of the logits' dtype."""
+        if self.one.dtype != logits.dtype:
+            self.one = torch.ones(1, 1, 1, dtype=logits.dtype)
+        return self.one
 
     def forward(self, p: list[torch.Tensor], x: torch.Tensor) -> tuple[list[torch.Tensor], list[torch.Tensor],
                                                                      torch.Tensor]:
@@ -73,7 +80,8 @@ class ResidualMaths:
         """
         a, act = self.a, self.act
         hs, us, logits = self.forward(p, x)
-        target = torch.zeros_like(logits).scatter_(1, y.unsqueeze(1), 1.0)
+        at = y.unsqueeze(1)                  # one-hot, class-major (a scatter from a tensor: faster than from a number)
+        target = torch.zeros_like(logits).scatter_(1, at, self._one(logits).expand(at.shape))
         g = _loss_grad(logits, target).mul_(1.0 / y.shape[1])        # (n_seeds, rows, n_classes)
         grads: list[torch.Tensor] = [torch.empty(0)] * len(p)
         grads[-2] = torch.bmm(g.transpose(1, 2), hs[-1])
