@@ -5,9 +5,10 @@
 
 For each family and depth K (4 and 8), the same workload two ways, interleaved round by round
 so that a busy machine slows them alike: depthplan's batched trainer (`train_cell`, every seed
-stacked: hand-batched matrix products for the built-in residual family, torch.func.vmap over
-the stacked modules for conv and a user's factory; the residual family is also run through the
-vmap path to show what the hand-batched forward adds), and the plain per-seed loop
+stacked: batched matrix products with a hand-written backward for the built-in residual family,
+grouped convolutions for conv, batched products for a factory's nn.Sequential, autograd for
+both; the residual family is also run through the generic torch.func.vmap path to show what the
+hand-written maths adds), and the plain per-seed loop
 (`train_plain`: each seed's own `nn.Module` + `torch.optim.SGD`, same init and batch order).
 Workload: scikit-learn's digits (64 features or 1x8x8 images, 10 classes, 1,437 training
 rows), width / channels 32 (conv 8), tanh, batch 32, SGD at a fixed rate, 16 seeds x 300

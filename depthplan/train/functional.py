@@ -6,11 +6,14 @@ modules (`families.build_network`, one per seed, initialised from the seed) are 
 `torch.vmap` (PyTorch's model-ensembling recipe): no hand-written maths, so any module that vmap
 can batch works. The loss is the sum over seeds of each seed's mean cross-entropy, so one autograd
 pass gives every seed its own gradient. The optimiser applies torch.optim's SGD, momentum and Adam
-rules to each stacked tensor. Each seed keeps its own minibatch order (`loop.BatchStream`), so its
-trajectory equals a plain per-seed `torch.optim` loop (`reference.train_plain`; tests/train).
+rules to the stacked tensors (one `torch._foreach_*` call per operation). Each seed keeps its own
+minibatch order (`loop.BatchStream`), so its trajectory equals a plain per-seed `torch.optim` loop (`reference.train_plain`; tests/train).
 
-The built-in residual family skips vmap: its forward pass is a few batched matrix products on the
-stacked weights (same maths, measured faster: benchmarks/family_speed.py).
+Three cases skip vmap (same maths, measured faster: benchmarks/family_speed.py): the built-in
+residual family runs as batched matrix products on the stacked weights, without norm with a
+hand-written backward (`residual.py`), with `norm: layer` through autograd; the built-in conv
+family and a factory module that is an `nn.Sequential` of common layers run as batched products
+and grouped convolutions (`sequential.py`) through autograd. Every other module goes through vmap.
 
 Probes: per weight tensor (every parameter with two or more axes, in the module's order: input
 side first for the built-in families), the displacement ||W_t - W_0||_F, the gradient SNR over a
@@ -41,6 +44,8 @@ from .convergence import Criterion
 from .datasets import Dataset
 from .families import branch_multiplier, build_network, network_input_shape
 from .probes import gradient_snr_db
+from .residual import ResidualMaths
+from .sequential import conv, grouped, linear, seed_major, sequential_forward
 
 #: Largest (n_seeds x rows x activations per row) block of one evaluation pass, in values.
 EVAL_BLOCK = 1 << 22
@@ -48,6 +53,7 @@ EVAL_BLOCK = 1 << 22
 GATHER_BLOCK = 1 << 23
 
 Forward = Callable[[list[torch.Tensor], torch.Tensor], torch.Tensor]
+Gradients = Callable[[list[torch.Tensor], torch.Tensor, torch.Tensor], list[torch.Tensor]]
 _ACT = {"tanh": torch.tanh, "relu": F.relu, "gelu": F.gelu, "sigmoid": torch.sigmoid}
 
 
@@ -60,10 +66,11 @@ class Members:
 
     def __init__(self, params: list[torch.Tensor], names: list[str], buffers: list[torch.Tensor],
                  buffer_names: list[str], base: nn.Module, call: Callable[..., torch.Tensor] | None = None,
-                 direct: Forward | None = None) -> None:
+                 direct: Forward | None = None, grad: Gradients | None = None) -> None:
         self.params, self.names, self.buffers, self.buffer_names = params, names, buffers, buffer_names
         self.base = base                     # the module on the meta device, for `functional_call`
         self._direct = direct
+        self.grad = grad                     # a hand-written backward, if the family has one
         if call is not None:
             self._batched = vmap(call, in_dims=(0, 0, 0))
             self._shared = vmap(call, in_dims=(0, 0, None))
@@ -102,6 +109,9 @@ def stack_networks(nets: list[nn.Module]) -> Members:
     params, buffers = stack_module_state(nets)
     base = copy.deepcopy(nets[0]).to("meta")
     names, bnames = list(params), list(buffers)
+    direct = sequential_forward(base, names, len(bnames))
+    if direct is not None:         # an nn.Sequential of common layers: batched operations, no vmap
+        return Members([params[n] for n in names], names, [], [], base, direct=direct)
 
     def call(p: list[torch.Tensor], b: list[torch.Tensor], x: torch.Tensor) -> torch.Tensor:
         return functional_call(base, ({**dict(zip(names, p)), **dict(zip(bnames, b))}), (x,))
@@ -115,6 +125,10 @@ def _residual_members(nets: list[nn.Module], model: ModelConfig, depth: int) -> 
     names, bnames = list(params), list(buffers)
     at = {n: i for i, n in enumerate(names)}
     act, a, norm = _ACT[model.activation], branch_multiplier(model, depth), model.norm == "layer"
+    if not norm:                   # the hand-written backward (residual.py), no autograd
+        maths = ResidualMaths(depth, model.activation, a)
+        return Members([params[n] for n in names], names, [buffers[n] for n in bnames], bnames,
+                       copy.deepcopy(nets[0]).to("meta"), direct=maths.logits, grad=maths.gradients)
 
     def lin(p: list[torch.Tensor], h: torch.Tensor, key: str) -> torch.Tensor:
         # h (n_seeds, rows, fan_in) -> (n_seeds, rows, fan_out), as nn.Linear: h W^T + b
@@ -129,6 +143,23 @@ def _residual_members(nets: list[nn.Module], model: ModelConfig, depth: int) -> 
                     + p[at[f"blocks.{k}.norm.bias"]].unsqueeze(1)
             h = h + a * lin(p, act(z), f"blocks.{k}.linear")
         return lin(p, h, "readout")
+
+    return Members([params[n] for n in names], names, [buffers[n] for n in bnames], bnames,
+                   copy.deepcopy(nets[0]).to("meta"), direct=forward)
+
+
+def _conv_members(nets: list[nn.Module], model: ModelConfig, depth: int) -> Members:
+    """The built-in conv family as grouped convolutions on its stacked weights (`sequential.conv`, no vmap)."""
+    params, buffers = stack_module_state(nets)
+    names, bnames = list(params), list(buffers)
+    act = _ACT[model.activation]
+
+    def forward(p: list[torch.Tensor], x: torch.Tensor) -> torch.Tensor:
+        n_seeds, h = x.shape[0], grouped(x)                               # (rows, n_seeds * c_in, H, W)
+        for k in range(depth):
+            h = act(conv(h, p[2 * k], p[2 * k + 1], n_seeds, padding=1))
+        pooled = seed_major(h.mean(dim=(-2, -1), keepdim=True), n_seeds).flatten(2)   # (n_seeds, rows, channels)
+        return linear(pooled, p[-2], p[-1])
 
     return Members([params[n] for n in names], names, [buffers[n] for n in bnames], bnames,
                    copy.deepcopy(nets[0]).to("meta"), direct=forward)
@@ -179,6 +210,8 @@ def build_members(model: ModelConfig, data: Dataset, depth: int, seeds: tuple[in
     nets = [build_network(model, data.input_shape, depth, data.n_classes, s, dtype) for s in seeds]
     if model.family_name == "residual":
         return _residual_members(nets, model, depth)
+    if model.family_name == "conv":
+        return _conv_members(nets, model, depth)
     return stack_networks(nets)
 
 
@@ -189,6 +222,9 @@ def _loss(logits: torch.Tensor, y: torch.Tensor) -> torch.Tensor:
 
 def _gradients(members: Members, x: torch.Tensor, y: torch.Tensor) -> tuple[torch.Tensor, ...]:
     """Every seed's gradient of its mean minibatch loss, per stacked tensor."""
+    if members.grad is not None:
+        with torch.no_grad():
+            return tuple(members.grad(members.params, x, y))
     with torch.enable_grad():
         return torch.autograd.grad(_loss(members.forward(members.params, x), y), members.params)
 
@@ -204,20 +240,26 @@ class StackedOptimizer:
 
     @torch.no_grad()
     def step(self, params: list[torch.Tensor], grads: tuple[torch.Tensor, ...]) -> None:
+        """One update of every stacked tensor, each rule as one `torch._foreach_*` call per operation."""
         self.t += 1
-        lr = self.lr
-        for p, g, st in zip(params, grads, self.state):
-            if self.kind == "adam":
-                b1, b2, eps = 0.9, 0.999, 1e-8
-                st[0].lerp_(g, 1 - b1)
-                st[1].mul_(b2).addcmul_(g, g, value=1 - b2)
-                denom = (st[1].sqrt() / (1 - b2 ** self.t) ** 0.5).add_(eps)
-                p.addcdiv_(st[0], denom, value=-lr / (1 - b1 ** self.t))
-            elif st:
-                st[0].mul_(self.mu).add_(g)      # velocity = mu * velocity + grad (torch's first step: grad)
-                p.add_(st[0], alpha=-lr)
-            else:
-                p.add_(g, alpha=-lr)
+        lr, grads = self.lr, list(grads)
+        if self.kind == "adam":
+            b1, b2, eps = 0.9, 0.999, 1e-8
+            m, v = [st[0] for st in self.state], [st[1] for st in self.state]
+            torch._foreach_lerp_(m, grads, 1 - b1)
+            torch._foreach_mul_(v, b2)
+            torch._foreach_addcmul_(v, grads, grads, value=1 - b2)
+            denom = torch._foreach_sqrt(v)
+            torch._foreach_div_(denom, (1 - b2 ** self.t) ** 0.5)
+            torch._foreach_add_(denom, eps)
+            torch._foreach_addcdiv_(params, m, denom, value=-lr / (1 - b1 ** self.t))
+        elif self.mu > 0:
+            velocity = [st[0] for st in self.state]
+            torch._foreach_mul_(velocity, self.mu)   # velocity = mu * velocity + grad (torch's first step: grad)
+            torch._foreach_add_(velocity, grads)
+            torch._foreach_add_(params, velocity, alpha=-lr)
+        else:
+            torch._foreach_add_(params, grads, alpha=-lr)
 
     def keep(self, rows: torch.Tensor) -> None:
         self.state = [[s.index_select(0, rows) for s in st] for st in self.state]

@@ -26,8 +26,10 @@ GATHER_BLOCK = 1 << 23
 _aten = torch.ops.aten
 
 
-def _activate(name: str, z: torch.Tensor) -> torch.Tensor:
-    """The activation of z, in place unless its derivative needs z itself (gelu)."""
+def _activate(name: str, z: torch.Tensor, inplace: bool = True) -> torch.Tensor:
+    """The activation of z, in place (unless `inplace` is off, or its derivative needs z itself: gelu)."""
+    if not inplace:
+        return _FRESH[name](z)
     if name == "tanh":
         return z.tanh_()
     if name == "relu":
@@ -35,6 +37,9 @@ def _activate(name: str, z: torch.Tensor) -> torch.Tensor:
     if name == "sigmoid":
         return z.sigmoid_()
     return F.gelu(z)
+
+
+_FRESH = {"tanh": torch.tanh, "relu": torch.relu, "sigmoid": torch.sigmoid, "gelu": F.gelu}
 
 
 def _activation_grad(name: str, grad: torch.Tensor, h: torch.Tensor, z: torch.Tensor | None) -> torch.Tensor:

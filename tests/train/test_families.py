@@ -99,6 +99,8 @@ def _curves(results) -> np.ndarray:
 FAMILIES = {
     "residual": (ModelConfig(width=8, family="residual", norm="layer", branch_scale="depth"), "tab"),
     "residual_plain": (ModelConfig(width=8, family="residual", activation="relu"), "tab"),
+    # no norm, tanh, depth-scaled branches: the hand-written backward (residual.py) with every optimiser
+    "residual_tanh": (ModelConfig(width=8, family="residual", branch_scale="depth"), "tab"),
     "conv": (ModelConfig(family="conv", channels=3, activation="relu"), "img"),
     "factory_cnn": (None, "img"),
 }
