@@ -235,8 +235,7 @@ def export_runs(store: SweepStore, folder: Path) -> list[RunResult]:
 # --------------------------------------------------------------------------- one worker
 
 def work(store: SweepStore, cfg: SweepFile, *, progress: Callable[[int], None] | None = None,
-         idle_wait_s: float = 2.0, linger_s: float = 0.0, keep_going: Callable[[], bool] | None = None,
-         data: Any = None) -> int:
+         idle_wait_s: float = 2.0, linger_s: float = 0.0, keep_going: Callable[[], bool] | None = None) -> int:
     """Claim and train cells until none is waiting or running; return how many this worker stored.
 
     A cell whose training raises is logged and stored as failed (see `SweepStore.fail`),
@@ -252,7 +251,7 @@ def work(store: SweepStore, cfg: SweepFile, *, progress: Callable[[int], None] |
     from ..train.loop import train_cell
     from .schedule import early_budget
 
-    data = load_dataset(cfg.data) if data is None else data
+    data = load_dataset(cfg.data)
     # longest expected first, so the last cell does not run alone; with early censoring the
     # shallow cells go first, as the budgets of the others come from their medians
     cost = None if cfg.sweep.early_censor is not None else (lambda spec: guards.expected_cost(cfg, spec))
@@ -297,22 +296,16 @@ def work(store: SweepStore, cfg: SweepFile, *, progress: Callable[[int], None] |
     return done
 
 
-def _worker_process(cfg_dict: dict, url: str, name: str, queue: Any, parent: int, go: Any) -> None:
+def _worker_process(cfg_dict: dict, url: str, name: str, queue: Any, parent: int) -> None:
     import torch
-
-    from ..train.datasets import load_dataset
 
     torch.set_num_threads(1)
     os.environ.setdefault("OMP_NUM_THREADS", "1")
+    cfg = config_from_dict(cfg_dict)
+    store = SweepStore(url, name)
     try:
-        cfg = config_from_dict(cfg_dict)
-        data = load_dataset(cfg.data)        # start-up (imports, data) runs while the parent still plans
-        while not go.wait(0.5):
-            if os.getppid() != parent:
-                return
-        store = SweepStore(url, name)
         # a worker whose `run` was killed finishes (and stores) its cell, then stops
-        work(store, cfg, progress=queue.put, keep_going=lambda: os.getppid() == parent, data=data)
+        work(store, cfg, progress=queue.put, keep_going=lambda: os.getppid() == parent)
     except KeyboardInterrupt:
         pass
 
@@ -359,31 +352,23 @@ class SweepSummary:
 
 
 def _train_round(cfg: SweepFile, store: SweepStore, cells: list[CellSpec], workers: int,
-                 show_progress: bool, label: str, retry_failed: bool, pool: "_Workers | None" = None) -> int:
-    """Plan `cells` and train those not stored, in this process or in `workers` processes (`pool`:
-    processes already started, e.g. while the held-out prediction was made)."""
+                 show_progress: bool, label: str, retry_failed: bool) -> int:
     store.reclaim_dead_local()
+    store.plan(cells, retry_failed=retry_failed)
+    store.reap_stale()
     stored = {r.cell_id for r in store.results()}
     if not retry_failed:
         stored |= {spec.cell_id for spec, _ in store.failures()}
     todo = [c for c in cells if c.cell_id not in stored]
+    total = sum(len(c.seeds) for c in todo) * cfg.train.max_updates
+    bar = _progress_bar(total, show_progress, f"{label}: {len(todo)} of {len(cells)} cells to train")
     workers = min(workers, max(1, len(todo)))
-    if workers > 1 and pool is None:
-        pool = _Workers(cfg, store, workers)       # their start-up overlaps the planning below
     try:
-        store.plan(cells, retry_failed=retry_failed)
-        store.reap_stale()
-        total = sum(len(c.seeds) for c in todo) * cfg.train.max_updates
-        bar = _progress_bar(total, show_progress, f"{label}: {len(todo)} of {len(cells)} cells to train")
-        try:
-            if pool is None:
-                return work(store, cfg, progress=bar.update)
-            return pool.run(store, bar)
-        finally:
-            bar.close()
+        if workers == 1:
+            return work(store, cfg, progress=bar.update)
+        return _run_processes(cfg, store, workers, bar)
     finally:
-        if pool is not None:
-            pool.stop()
+        bar.close()
 
 
 def _tune_rates(cfg: SweepFile, store: SweepStore, state: dict[str, Any], workers: int, show: bool) -> None:
@@ -584,66 +569,40 @@ def _verify_round(cfg: SweepFile, folder: Path, store: SweepStore, state: dict[s
     if not {c.cell_id for c in swept} <= {r.cell_id for r in results}:
         log.warning("%s: the held-out size waits until every swept cell is stored", cfg.name)
         return 0
-    cells = plan_cells(cfg, state, sizes=[verify_size(cfg)])
-    pool = None
     if PREDICTION_KEY not in store.meta():
-        if workers > 1:   # the workers start up (torch, data) while the prediction is made; none trains before it is stored
-            pool = _Workers(cfg, store, min(workers, len(cells)))
-        try:
-            record = predict_held_out(cfg, results)
-            store.set_meta(PREDICTION_KEY, record)
-            write_sidecars(cfg, folder, store, state)          # the prediction is on disk before it trains
-        except BaseException:
-            if pool is not None:
-                pool.stop()
-            raise
+        record = predict_held_out(cfg, results)
+        store.set_meta(PREDICTION_KEY, record)
+        write_sidecars(cfg, folder, store, state)          # the prediction is on disk before it trains
         log.info("%s: prediction for the held-out size stored before training it", cfg.name)
-    return _train_round(cfg, store, cells, workers, show_progress, f"{cfg.name} held-out size", retry_failed=True,
-                        pool=pool)
+    cells = plan_cells(cfg, state, sizes=[verify_size(cfg)])
+    return _train_round(cfg, store, cells, workers, show_progress, f"{cfg.name} held-out size", retry_failed=True)
 
 
-class _Workers:
-    """Local worker processes, started before their cells are planned: each imports torch and loads
-    the data at once, then waits for `run` to let it claim cells (so its start-up overlaps the
-    parent's planning, or the held-out prediction)."""
-
-    def __init__(self, cfg: SweepFile, store: SweepStore, workers: int) -> None:
-        ctx = mp.get_context("spawn")
-        self.queue, self.go = ctx.Queue(), ctx.Event()
-        self.procs = [ctx.Process(target=_worker_process, daemon=True,
-                                  args=(cfg.to_dict(), store.url, store.name, self.queue, os.getpid(), self.go))
-                      for _ in range(workers)]
-        for p in self.procs:
-            p.start()
-
-    def run(self, store: SweepStore, bar: Any) -> int:
-        """Let the workers claim the planned cells; wait until they stop; return the cells stored."""
-        before = len(store.completed_cells())
-        self.go.set()
-        procs, queue = self.procs, self.queue
-        try:
-            while any(p.is_alive() for p in procs) or not queue.empty():
-                try:
-                    bar.update(queue.get(timeout=0.5))
-                except Exception:  # queue.Empty: nothing reported in the last half second
-                    pass
-        except KeyboardInterrupt:
-            for p in procs:
-                p.join(timeout=30)
-            raise
+def _run_processes(cfg: SweepFile, store: SweepStore, workers: int, bar: Any) -> int:
+    ctx = mp.get_context("spawn")
+    queue = ctx.Queue()
+    before = len(store.completed_cells())
+    procs = [ctx.Process(target=_worker_process, args=(cfg.to_dict(), store.url, store.name, queue, os.getpid()),
+                         daemon=True)
+             for _ in range(workers)]
+    for p in procs:
+        p.start()
+    try:
+        while any(p.is_alive() for p in procs) or not queue.empty():
+            try:
+                bar.update(queue.get(timeout=0.5))
+            except Exception:  # queue.Empty: nothing reported in the last half second
+                pass
+    except KeyboardInterrupt:
         for p in procs:
-            p.join()
-        bad = [p.exitcode for p in procs if p.exitcode]
-        if bad:
-            log.warning("%d worker process(es) exited with status %s", len(bad), bad)
-        return len(store.completed_cells()) - before
-
-    def stop(self) -> None:
-        """End workers that never got to run (an error before `run`): they exit when set going with no cells."""
-        if not self.go.is_set():
-            for p in self.procs:
-                p.terminate()
-                p.join(timeout=10)
+            p.join(timeout=30)
+        raise
+    for p in procs:
+        p.join()
+    bad = [p.exitcode for p in procs if p.exitcode]
+    if bad:
+        log.warning("%d worker process(es) exited with status %s", len(bad), bad)
+    return len(store.completed_cells()) - before
 
 
 class _NoBar:
