@@ -53,6 +53,27 @@ def _activation_grad(name: str, grad: torch.Tensor, h: torch.Tensor, z: torch.Te
     return _aten.gelu_backward(grad, z)
 
 
+#: The activations whose derivative `_activation_grad` takes from the output h, with an out= form.
+_GRAD_OUT = {"tanh": _aten.tanh_backward.grad_input, "sigmoid": _aten.sigmoid_backward.grad_input,
+             "relu": lambda grad, h, grad_input: _aten.threshold_backward.grad_input(grad, h, 0, grad_input=grad_input)}
+
+
+class _Buffers:
+    """Per hidden layer of a stack, for a pass over `rows` rows per seed: its output h (n_seeds, rows,
+    width) with h's transposed view, and two gradient tensors of the same shape."""
+
+    def __init__(self, ws: list[torch.Tensor], rows: int) -> None:
+        shapes = [(w.shape[0], rows, w.shape[2]) for w in ws[:-1]]
+        self.h = [torch.empty(s, dtype=ws[0].dtype) for s in shapes]
+        self.ht = [h.transpose(1, 2) for h in self.h]
+        self.gw = [torch.empty(s, dtype=ws[0].dtype) for s in shapes]
+        self.g = [torch.empty(s, dtype=ws[0].dtype) for s in shapes]
+
+    def transposed(self, layer: int, h: torch.Tensor) -> torch.Tensor:
+        """h^T of a layer's input: the stored view when h is this pass's buffer (no op per step)."""
+        return self.ht[layer - 1] if layer and h is self.h[layer - 1] else h.transpose(1, 2)
+
+
 class _Stack:
     """Every active seed's weights stacked along a leading axis, updated in place.
 
@@ -61,13 +82,25 @@ class _Stack:
     once here rather than at every step.
     """
 
-    def __init__(self, ws: list[torch.Tensor], bs: list[torch.Tensor]) -> None:
+    def __init__(self, ws: list[torch.Tensor], bs: list[torch.Tensor], scratch: bool = False) -> None:
         self.ws, self.bs = ws, bs
+        self.scratch = scratch
         self._views()
 
     def _views(self) -> None:
         self.wts = [w.transpose(1, 2) for w in self.ws]
         self.b_out_t = self.bs[-1].transpose(1, 2)
+        self._bufs: dict[int, _Buffers] = {}
+
+    def buffers(self, rows: int) -> "_Buffers | None":
+        """With `scratch`, the reused activation and gradient tensors of a pass over `rows` rows per seed
+        (made once per batch of seeds: a fresh small tensor per layer and step costs its allocation)."""
+        if not self.scratch or len(self.ws) < 2:
+            return None
+        buf = self._bufs.get(rows)
+        if buf is None:
+            buf = self._bufs[rows] = _Buffers(self.ws, rows)
+        return buf
 
     @property
     def n_seeds(self) -> int:
@@ -92,20 +125,32 @@ class _Stack:
         """
         hs: list[torch.Tensor] = [x]
         zs: list[torch.Tensor | None] = []
-        for w, b in zip(self.ws[:-1], self.bs[:-1]):
-            z = torch.baddbmm(b, hs[-1], w)             # (n_seeds, rows, width)
+        buf = self.buffers(x.shape[1]) if act != "gelu" else None
+        for i, (w, b) in enumerate(zip(self.ws[:-1], self.bs[:-1])):
+            if buf is None:
+                z = torch.baddbmm(b, hs[-1], w)             # (n_seeds, rows, width)
+            else:                                           # the same kernel, into the layer's own tensor
+                z = torch.baddbmm(b, hs[-1], w, out=buf.h[i])
             zs.append(z if act == "gelu" else None)
             hs.append(_activate(act, z))
-        return hs, zs, self.logits(hs[-1])
+        if buf is None:
+            return hs, zs, self.logits(hs[-1])
+        return hs, zs, torch.baddbmm(self.b_out_t, self.wts[-1], buf.ht[-1])
 
     def backward(self, hs: list[torch.Tensor], zs: list[torch.Tensor | None], g: torch.Tensor, act: str,
                  update: Callable[[int, torch.Tensor, torch.Tensor], None]) -> None:
         """Walk from the output layer down, handing `update(layer, h, g)` each layer's input h and the
         loss gradient g at its output. The gradient below a layer is taken before `update` changes it."""
+        buf = self.buffers(g.shape[1]) if act in _GRAD_OUT else None
+        if buf is not None and any(h is not b for h, b in zip(hs[1:], buf.h)):
+            buf = None                                      # hs are not this stack's buffers
         for layer in range(len(self.ws) - 1, -1, -1):
             below = None
-            if layer:
+            if layer and buf is None:
                 below = _activation_grad(act, torch.bmm(g, self.wts[layer]), hs[layer], zs[layer - 1])
+            elif layer:                                     # the same kernels, into reused tensors
+                product = torch.bmm(g, self.wts[layer], out=buf.gw[layer - 1])
+                below = _GRAD_OUT[act](product, hs[layer], grad_input=buf.g[layer - 1])
             update(layer, hs[layer], g)
             g = below
 
@@ -158,6 +203,7 @@ class _Optimizer:
     def __init__(self, cfg: TrainConfig, lr: float, stack: _Stack, batch: int) -> None:
         self.kind, self.lr, self.mu = cfg.optimizer, lr, cfg.momentum
         self.stack = stack
+        stack.scratch = True              # the training passes reuse their tensors
         self.scale = 1.0 / batch
         self.ones = torch.ones(stack.n_seeds, 1, batch, dtype=stack.ws[0].dtype)
         n_state = 2 if self.kind == "adam" else int(self.mu > 0)
@@ -174,7 +220,9 @@ class _Optimizer:
 
     def _sgd(self, layer: int, h: torch.Tensor, g: torch.Tensor) -> None:
         alpha = -self.lr * self.scale
-        self.stack.ws[layer].baddbmm_(h.transpose(1, 2), g, alpha=alpha)
+        buf = self.stack.buffers(h.shape[1])
+        ht = h.transpose(1, 2) if buf is None else buf.transposed(layer, h)
+        self.stack.ws[layer].baddbmm_(ht, g, alpha=alpha)
         self.stack.bs[layer].baddbmm_(self.ones, g, alpha=alpha)
 
     def _general(self, layer: int, h: torch.Tensor, g: torch.Tensor) -> None:
