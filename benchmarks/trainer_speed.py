@@ -21,7 +21,7 @@ MLPClassifier evaluates nothing between epochs, so its count has no evaluation s
 Then a width axis (32, 64, 128, 256 at K = 4): depthplan against the plain loop, with the
 fraction of the matmul peak (wider proxies are where a transfer sweep spends its time).
 
-Part 2, end to end. The demo sweep (`configs/demo.yaml`) run by `run_sweep` (storage,
+Part 2, end to end. The single-width demo sweep (`configs/one-width.yaml`) run by `run_sweep` (storage,
 export and all) against the same runs done by the plain loop, each seed stopping at
 the same convergence rule; it also reports how many runs agree on the updates to
 convergence. `--quick` cuts the demo to three depths and two seeds.
@@ -211,7 +211,7 @@ def width_axis(data: Dataset, plan: Plan, peak: float) -> dict[int, float]:
 # --------------------------------------------------------------------------- part 2: the demo sweep
 
 def demo_config(quick: bool):
-    cfg = load_config(ROOT / "configs" / "demo.yaml")
+    cfg = load_config(ROOT / "configs" / "one-width.yaml")
     if not quick:
         return cfg
     d = cfg.to_dict()
