@@ -226,7 +226,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
         kept = keep_unchanged(folder, sample)
         print(f"the runs {'reproduce' if reproduced else 'differ from'} the ones {folder} held"
               + (" (apart from their timings)" if reproduced else "")
-              + (f"; {len(kept)} files that changed only in dates or the checkout's path keep their bytes" if kept else ""))
+              + (f"; {len(kept)} files that changed only in dates, paths or provenance notes keep their bytes" if kept else ""))
     print(f"demo report: {paths['html']}")
     print_plan(json.loads(Path(paths["fit"]).read_text(encoding="utf-8")), folder)
     return 0

@@ -8,8 +8,9 @@ that would leave a clean checkout looking modified, so:
 
 1. when the new runs equal the committed ones apart from their timings, the committed `runs.csv`
    and `runs.jsonl` are put back before the fit, so every figure drawn from them is the committed one;
-2. after the report, a file whose new text equals the committed text with dates and the checkout's
-   path masked keeps its committed bytes.
+2. after the report, a file whose new text equals the committed text with dates, the checkout's
+   path, the commit of the code and the report's note on how fit.json came about masked keeps its
+   committed bytes.
 
 A file that differs in anything else (a run, a fitted number, a figure, another machine's facts)
 is written anew: that difference is news.
@@ -33,6 +34,10 @@ SAMPLE_FILES = ("runs.csv", "runs.jsonl", "tuning.csv", "fit.json", "sweep.json"
 _DATE = re.compile(r"\d{4}-\d{2}-\d{2}[T ]\d{2}:\d{2}(?::\d{2}(?:\.\d+)?)?(?:Z|[+-]\d{2}:?\d{2}| UTC)?")
 #: An absolute path up to the checkout's results/ or configs/ folder (also inside a sqlite:/// URL).
 _CHECKOUT = re.compile(r"/[^\s\"'`|<>()]*?(?=/(?:results|configs)/)")
+#: The commit of the code that wrote the report (a version, not a result).
+_COMMIT = re.compile(r"\b[0-9a-f]{40}\b(?: \(with uncommitted changes\))?")
+#: The report's note on how fit.json came about (reused, or refitted and why): the process, not the result.
+_FIT_NOTE = re.compile(r"(?:reused fit\.json: it is newer than the runs|fitted now \(\d+ bootstrap resamples\) because [^;|<]*)")
 
 
 def snapshot(folder: Path) -> dict[str, bytes]:
@@ -77,7 +82,9 @@ def _masked(data: bytes) -> bytes | None:
         text = data.decode("utf-8")
     except UnicodeDecodeError:
         return None
-    return _CHECKOUT.sub("<checkout>", _DATE.sub("<date>", text)).encode("utf-8")
+    for pattern, token in ((_DATE, "<date>"), (_CHECKOUT, "<checkout>"), (_FIT_NOTE, "<fit note>"), (_COMMIT, "<commit>")):
+        text = pattern.sub(token, text)
+    return text.encode("utf-8")
 
 
 def keep_unchanged(folder: Path, snap: dict[str, bytes]) -> list[str]:

@@ -41,14 +41,18 @@ def test_reproduced_runs_get_their_committed_bytes_back_and_others_do_not(tmp_pa
 def test_only_dates_and_the_checkout_path_are_masked(tmp_path: Path) -> None:
     report = ("| runs | written 2026-12-03 14:19 UTC |\n| config file | `/work/main/configs/demo.yaml` |\n"
               "stored 2026-12-03T14:02:21+0000; storage sqlite:////work/main/results/demo/store.db\n"
-              "| 12 | 1,500 | 0.321 |\n")
+              "| fit | reused fit.json: it is newer than the runs; bootstrap seed 0 |\n"
+              f"| depthplan commit | {'2471c8c8' * 5} |\n| 12 | 1,500 | 0.321 |\n")
     (tmp_path / "report.md").write_text(report)
     (tmp_path / "figures").mkdir()
     (tmp_path / "figures" / "loss.png").write_bytes(b"\x89PNG\x00\xff")
     snap = snapshot(tmp_path)
     assert set(snap) == {"report.md", "figures/loss.png"}
     elsewhere = (report.replace("2026-12-03 14:19", "2027-01-05 09:02").replace("/work/main", "/home/ana/dp")
-                 .replace("2026-12-03T14:02:21+0000", "2027-01-05T09:01:58+0100"))
+                 .replace("2026-12-03T14:02:21+0000", "2027-01-05T09:01:58+0100")
+                 .replace("2471c8c8" * 5, "9c25fcd0" * 5 + " (with uncommitted changes)")
+                 .replace("reused fit.json: it is newer than the runs",
+                          "fitted now (400 bootstrap resamples) because runs.csv changed after the stored one was written"))
     (tmp_path / "report.md").write_text(elsewhere)
     (tmp_path / "figures" / "loss.png").write_bytes(b"\x89PNG\x00\xfe")       # a changed figure is news
     assert keep_unchanged(tmp_path, snap) == ["report.md"]
