@@ -38,7 +38,7 @@ class BatchStream:
         return buf[:need].reshape(n_steps, self.batch)
 
 
-def _eval_subset(n_rows: int, eval_rows: int | None) -> torch.Tensor | None:
+def eval_subset(n_rows: int, eval_rows: int | None) -> torch.Tensor | None:
     """Row indices of the fixed evaluation subset, or None for all rows."""
     if eval_rows is None or eval_rows >= n_rows:
         return None
@@ -47,7 +47,7 @@ def _eval_subset(n_rows: int, eval_rows: int | None) -> torch.Tensor | None:
 
 
 @dataclass
-class _CellTensors:
+class CellTensors:
     """A cell's data as tensors: training set with one-hot targets, evaluation rows, validation set,
     and the fixed batch of the information probe."""
 
@@ -66,15 +66,15 @@ class _CellTensors:
 INFORMATION_ROWS = 1000
 
 
-def _cell_tensors(data: Dataset, dtype: torch.dtype, eval_rows: int | None) -> _CellTensors:
+def cell_tensors(data: Dataset, dtype: torch.dtype, eval_rows: int | None) -> CellTensors:
     """The task's arrays as tensors of `dtype`, with the fixed evaluation subset picked out."""
     x = torch.from_numpy(data.x_train).to(dtype)
     y = torch.from_numpy(data.y_train)
     x_val = torch.from_numpy(data.x_val).to(dtype)
     y_val = torch.from_numpy(data.y_val)
     onehot = F.one_hot(y, data.n_classes).to(dtype)
-    subset = _eval_subset(x.shape[0], eval_rows)
+    subset = eval_subset(x.shape[0], eval_rows)
     x_eval, y_eval = (x, y) if subset is None else (x[subset], y[subset])
-    info = _eval_subset(x.shape[0], INFORMATION_ROWS)
+    info = eval_subset(x.shape[0], INFORMATION_ROWS)
     x_info, y_info = (x, y) if info is None else (x[info], y[info])
-    return _CellTensors(x, onehot, x_eval, y_eval, x_val, y_val, x_info, y_info.numpy())
+    return CellTensors(x, onehot, x_eval, y_eval, x_val, y_val, x_info, y_info.numpy())

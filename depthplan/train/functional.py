@@ -7,7 +7,7 @@ modules (`families.build_network`, one per seed, initialised from the seed) are 
 can batch works. The loss is the sum over seeds of each seed's mean cross-entropy, so one autograd
 pass gives every seed its own gradient. The optimiser applies torch.optim's SGD, momentum and Adam
 rules to the stacked tensors (one `torch._foreach_*` call per operation). Each seed keeps its own
-minibatch order (`loop.BatchStream`), so its trajectory equals a plain per-seed `torch.optim` loop (`reference.train_plain`; tests/train).
+minibatch order (`batches.BatchStream`), so its trajectory equals a plain per-seed `torch.optim` loop (`reference.train_plain`; tests/train).
 
 Three cases skip vmap (same maths, measured faster: benchmarks/family_speed.py): the built-in
 residual family runs as batched matrix products on the stacked weights, without norm with a
@@ -38,7 +38,7 @@ from ..config import ModelConfig, ProbeConfig, TrainConfig
 from ..errors import ConfigError, first_line
 from ..records import CellSpec, RunResult
 from ..information import binned_information
-from .batches import BatchStream, _cell_tensors
+from .batches import BatchStream, cell_tensors
 from .cell import ProbeValues, ProgressFn, Schedule, cell_results, layer_displacements, run_cell
 from .convergence import Criterion
 from .datasets import Dataset
@@ -392,7 +392,7 @@ def train_cell_functional(spec: CellSpec, model: ModelConfig, train: TrainConfig
                           eval_rows: int | None) -> list[RunResult]:
     """`loop.train_cell` for every family but mlp: same arguments, stopping rules, probe schedule and records."""
     t_start = time.perf_counter()
-    t = _cell_tensors(data, dtype, eval_rows)
+    t = cell_tensors(data, dtype, eval_rows)
     shape = network_input_shape(model, data.input_shape)
     x, x_eval, x_val, x_info = (v.view(len(v), *shape) for v in (t.x, t.x_eval, t.x_val, t.x_info))
     budget = min(train.max_updates, spec.stop_after or train.max_updates)

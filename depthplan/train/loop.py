@@ -31,12 +31,12 @@ import torch
 from ..config import ModelConfig, ProbeConfig, TrainConfig
 from ..errors import ConfigError
 from ..records import CellSpec, RunResult
-from .batches import INFORMATION_ROWS, BatchStream, _CellTensors, _cell_tensors, _eval_subset  # noqa: F401 (tests import them from here)
+from .batches import BatchStream, CellTensors, cell_tensors
 from .cell import ProbeValues, ProgressFn, Schedule, cell_results, layer_displacements, run_cell
 from .convergence import Criterion
 from .datasets import Dataset
 from .models import count_params, init_weights
-from .stacked import _evaluate, _gradient_snr, _information, _minibatches, _Optimizer, _Stack
+from .stacked import _evaluate, gradient_snr_db_by_layer, _information, _minibatches, _Optimizer, SeedStack
 
 
 # --------------------------------------------------------------------------- one cell
@@ -94,7 +94,7 @@ def train_cell(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: P
 class _MlpEngine:
     """The mlp family's stacked seeds (`stacked.py`) as the `cell.Engine` that `cell.run_cell` drives."""
 
-    def __init__(self, stack: _Stack, opt: _Optimizer, t: _CellTensors, act: str, probes: ProbeConfig) -> None:
+    def __init__(self, stack: SeedStack, opt: _Optimizer, t: CellTensors, act: str, probes: ProbeConfig) -> None:
         self.stack, self.opt, self.t, self.act, self.probes = stack, opt, t, act, probes
         self.w0 = [w.clone() for w in stack.ws]
 
@@ -112,7 +112,7 @@ class _MlpEngine:
     def validation(self, done: list[int], val_acc: np.ndarray) -> list[float]:
         """Validation accuracy of the seeds at rows `done` of the stack."""
         rows_done = torch.tensor(done)
-        finished = _Stack([w.index_select(0, rows_done) for w in self.stack.ws],
+        finished = SeedStack([w.index_select(0, rows_done) for w in self.stack.ws],
                           [b.index_select(0, rows_done) for b in self.stack.bs])
         return [float(v) for v in _evaluate(finished, self.t.x_val, self.t.y_val, self.act)[1]]
 
@@ -122,8 +122,8 @@ class _MlpEngine:
         pick = None if every else torch.tensor(rows, dtype=torch.long)
         ws = self.stack.ws if every else [w.index_select(0, pick) for w in self.stack.ws]
         w0 = self.w0 if every else [w.index_select(0, pick) for w in self.w0]
-        sub = self.stack if every else _Stack(ws, [b.index_select(0, pick) for b in self.stack.bs])
-        snr = None if draws is None else _gradient_snr(sub, self.t.x, self.t.onehot, draws, self.act)
+        sub = self.stack if every else SeedStack(ws, [b.index_select(0, pick) for b in self.stack.bs])
+        snr = None if draws is None else gradient_snr_db_by_layer(sub, self.t.x, self.t.onehot, draws, self.act)
         info = None
         if sparse and self.probes.information:
             info = _information(sub, self.t.x_info, self.t.y_info, self.act, self.probes.bins)
@@ -138,10 +138,10 @@ class _MlpEngine:
 def _train_cell(spec: CellSpec, model: ModelConfig, train: TrainConfig, probes: ProbeConfig, data: Dataset,
                 progress: ProgressFn | None, dtype: torch.dtype, eval_rows: int | None) -> list[RunResult]:
     t_start = time.perf_counter()
-    t = _cell_tensors(data, dtype, eval_rows)
+    t = cell_tensors(data, dtype, eval_rows)
     budget = min(train.max_updates, spec.stop_after or train.max_updates)
     n_rows, n_in = t.x.shape
-    stack = _Stack(*stacked_weights(model, n_in, spec.depth, data.n_classes, spec.seeds, dtype))
+    stack = SeedStack(*stacked_weights(model, n_in, spec.depth, data.n_classes, spec.seeds, dtype))
     streams = [BatchStream(s, n_rows, train.batch_size) for s in spec.seeds]
     engine = _MlpEngine(stack, _Optimizer(train, spec.learning_rate, stack, streams[0].batch), t,
                         model.activation, probes)

@@ -74,7 +74,7 @@ class _Buffers:
         return self.ht[layer - 1] if layer and h is self.h[layer - 1] else h.transpose(1, 2)
 
 
-class _Stack:
+class SeedStack:
     """Every active seed's weights stacked along a leading axis, updated in place.
 
     ws: per layer (n_seeds, fan_in, fan_out); bs: per layer (n_seeds, 1, fan_out). The transposed
@@ -167,7 +167,7 @@ def _loss_grad(logits: torch.Tensor, target: torch.Tensor) -> torch.Tensor:
     return torch.softmax(logits, dim=1).sub_(target).transpose(1, 2)
 
 
-def _evaluate(stack: _Stack, x: torch.Tensor, y: torch.Tensor, act: str) -> tuple[np.ndarray, np.ndarray]:
+def _evaluate(stack: SeedStack, x: torch.Tensor, y: torch.Tensor, act: str) -> tuple[np.ndarray, np.ndarray]:
     """Mean cross-entropy and accuracy of every seed on all of (x, y), in row blocks of bounded size."""
     n_seeds, n_rows = stack.n_seeds, x.shape[0]
     width = max(w.shape[2] for w in stack.ws)
@@ -192,7 +192,7 @@ def _evaluate(stack: _Stack, x: torch.Tensor, y: torch.Tensor, act: str) -> tupl
 
 
 class _Optimizer:
-    """torch.optim's SGD (optionally with momentum) and Adam update rules, on a `_Stack`.
+    """torch.optim's SGD (optionally with momentum) and Adam update rules, on a `SeedStack`.
 
     `update(layer, h, g)` takes a layer's input h (n_seeds, batch, fan_in) and the loss gradient at
     its output g (n_seeds, batch, fan_out), summed over the batch: the mean gradients are
@@ -200,7 +200,7 @@ class _Optimizer:
     baddbmm_ per tensor, no gradient buffer); momentum folds it into the velocity.
     """
 
-    def __init__(self, cfg: TrainConfig, lr: float, stack: _Stack, batch: int) -> None:
+    def __init__(self, cfg: TrainConfig, lr: float, stack: SeedStack, batch: int) -> None:
         self.kind, self.lr, self.mu = cfg.optimizer, lr, cfg.momentum
         self.stack = stack
         stack.scratch = True              # the training passes reuse their tensors
@@ -247,7 +247,7 @@ class _Optimizer:
         self.state = [[s.index_select(0, rows) for s in st] for st in self.state]
 
 
-def _draw_gradients(stack: _Stack, x: torch.Tensor, target: torch.Tensor, act: str,
+def draw_gradients(stack: SeedStack, x: torch.Tensor, target: torch.Tensor, act: str,
                     n_draws: int) -> list[torch.Tensor]:
     """Weight gradients of `n_draws` minibatches per seed at the current weights, weights untouched.
 
@@ -273,7 +273,7 @@ def _draw_gradients(stack: _Stack, x: torch.Tensor, target: torch.Tensor, act: s
     return grads
 
 
-def _gradient_snr(stack: _Stack, x: torch.Tensor, onehot: torch.Tensor, rows: np.ndarray, act: str) -> list[np.ndarray]:
+def gradient_snr_db_by_layer(stack: SeedStack, x: torch.Tensor, onehot: torch.Tensor, rows: np.ndarray, act: str) -> list[np.ndarray]:
     """Per layer, every seed's gradient SNR in dB over its window of minibatches at the current weights.
 
     The bias-corrected estimate of `gradient_snr_db`: NaN where the SNR is below what the window
@@ -290,14 +290,14 @@ def _gradient_snr(stack: _Stack, x: torch.Tensor, onehot: torch.Tensor, rows: np
     group = max(1, EVAL_BLOCK // per_seed)
     parts = []
     for lo in range(0, n_seeds, group):
-        sub = _Stack([w[lo:lo + group] for w in stack.ws], [b[lo:lo + group] for b in stack.bs])
+        sub = SeedStack([w[lo:lo + group] for w in stack.ws], [b[lo:lo + group] for b in stack.bs])
         drawn = torch.from_numpy(rows[lo:lo + group].reshape(len(sub.ws[0]), -1))   # (group, window * batch)
-        grads = _draw_gradients(sub, x[drawn], onehot[drawn].transpose(1, 2), act, n_draws)
+        grads = draw_gradients(sub, x[drawn], onehot[drawn].transpose(1, 2), act, n_draws)
         parts.append([gradient_snr_db(g.numpy()) for g in grads])
     return [np.concatenate(layer) for layer in zip(*parts)]
 
 
-def _layer_outputs(stack: _Stack, x: torch.Tensor, act: str) -> list[torch.Tensor]:
+def _layer_outputs(stack: SeedStack, x: torch.Tensor, act: str) -> list[torch.Tensor]:
     """Every layer's output on the rows x (n_rows, n_in), for every seed: per hidden layer its
     activations (n_seeds, n_rows, width), and for the output layer the softmax probabilities
     (n_seeds, n_rows, n_classes). Input side first, as the other probes."""
@@ -305,7 +305,7 @@ def _layer_outputs(stack: _Stack, x: torch.Tensor, act: str) -> list[torch.Tenso
     return hs[1:] + [torch.softmax(logits, dim=1).transpose(1, 2)]
 
 
-def _information(stack: _Stack, x: torch.Tensor, y: np.ndarray, act: str,
+def _information(stack: SeedStack, x: torch.Tensor, y: np.ndarray, act: str,
                  n_bins: int) -> list[list[tuple[float, float]]]:
     """Per seed, per layer (I(X;T), I(T;Y)) in bits on the fixed batch (x, y), by binning.
 
@@ -315,7 +315,7 @@ def _information(stack: _Stack, x: torch.Tensor, y: np.ndarray, act: str,
     group = max(1, EVAL_BLOCK // per_seed)
     out: list[list[tuple[float, float]]] = []
     for lo in range(0, stack.n_seeds, group):
-        sub = _Stack([w[lo:lo + group] for w in stack.ws], [b[lo:lo + group] for b in stack.bs])
+        sub = SeedStack([w[lo:lo + group] for w in stack.ws], [b[lo:lo + group] for b in stack.bs])
         outs = _layer_outputs(sub, x, act)
         out += [[binned_information(o[i].numpy(), y, n_bins) for o in outs] for i in range(sub.n_seeds)]
     return out

@@ -8,7 +8,7 @@ from __future__ import annotations
 import numpy as np
 import torch
 
-from depthplan.train.batches import BatchStream, _eval_subset
+from depthplan.train.batches import BatchStream, eval_subset
 
 
 def test_batch_stream_shuffles_whole_epochs() -> None:
@@ -41,6 +41,6 @@ def test_the_evaluation_subset_is_fixed() -> None:
     # the rows the training loss is scored on when train.eval_rows is set (private to batches.py,
     # which the trainers import it from under this name)
     n_rows = 320
-    sub = _eval_subset(n_rows, 50)
-    assert len(sub) == 50 and len(set(sub.tolist())) == 50 and torch.equal(sub, _eval_subset(n_rows, 50))
-    assert _eval_subset(n_rows, n_rows) is None and _eval_subset(n_rows, None) is None
+    sub = eval_subset(n_rows, 50)
+    assert len(sub) == 50 and len(set(sub.tolist())) == 50 and torch.equal(sub, eval_subset(n_rows, 50))
+    assert eval_subset(n_rows, n_rows) is None and eval_subset(n_rows, None) is None

@@ -18,7 +18,7 @@ from depthplan.train.datasets import load_dataset
 from depthplan.train.loop import train_cell
 from depthplan.train.probes import probe_grids
 from depthplan.train.reference import probe_plain, train_plain
-from depthplan.train.stacked import _Stack
+from depthplan.train.stacked import SeedStack
 from trainer_setup import NO_PROBES, OPTIMIZERS, RATES, curves, short_train
 
 pytestmark = pytest.mark.usefixtures("one_thread")     # tests/train/conftest.py
@@ -180,8 +180,8 @@ def test_a_seed_that_converges_leaves_and_the_others_train_as_if_alone(data, mon
                         converge_when=ConvergeConfig(train_loss_below=float(free[fast, 1] + others_best) / 2))
 
     seeds_per_step: list[int] = []
-    forward = _Stack.forward          # private: stacked.py names nothing public that shows the batch size
-    monkeypatch.setattr(_Stack, "forward", lambda self, x, act: (seeds_per_step.append(x.shape[0]), forward(self, x, act))[1])
+    forward = SeedStack.forward          # private: stacked.py names nothing public that shows the batch size
+    monkeypatch.setattr(SeedStack, "forward", lambda self, x, act: (seeds_per_step.append(x.shape[0]), forward(self, x, act))[1])
     together = train_cell(CellSpec(2, seeds, lr), model, train, NO_PROBES, data, dtype=torch.float64)
     assert together[fast].status == "converged" and together[fast].iterations <= 40
     assert seeds_per_step[0] == 3 and min(seeds_per_step) < 3    # the batch shrank once a seed was done

@@ -1,7 +1,7 @@
 """The maths of stacked seed networks (stacked.py) against autograd and torch.optim, seed by seed.
 
-stacked.py has no public names: its pieces (`_Stack`, `_Optimizer`, `_draw_gradients`,
-`_gradient_snr`, `_information`) are reached through `loop.train_cell` where that suffices, and
+stacked.py has no public names: its pieces (`SeedStack`, `_Optimizer`, `draw_gradients`,
+`gradient_snr_db_by_layer`, `_information`) are reached through `loop.train_cell` where that suffices, and
 directly only where a check needs one minibatch's gradients (the SNR draws).
 """
 from __future__ import annotations
@@ -21,7 +21,7 @@ from depthplan.train.datasets import load_dataset
 from depthplan.train.loop import stacked_weights, train_cell
 from depthplan.train.models import build_mlp
 from depthplan.train.reference import probe_plain, train_plain
-from depthplan.train.stacked import _draw_gradients, _gradient_snr, _Stack
+from depthplan.train.stacked import draw_gradients, gradient_snr_db_by_layer, SeedStack
 from trainer_setup import NO_PROBES, OPTIMIZERS, RATES, curves, short_train
 
 pytestmark = pytest.mark.usefixtures("one_thread")     # tests/train/conftest.py
@@ -64,10 +64,10 @@ def test_snr_draws_match_autograd_gradients_draw_by_draw(data) -> None:
     model, seeds, n_draws, batch = ModelConfig(width=8), (0, 1), 3, 5
     x = torch.from_numpy(data.x_train).double()
     y = torch.from_numpy(data.y_train)
-    stack = _Stack(*stacked_weights(model, x.shape[1], 2, data.n_classes, seeds, torch.float64))
+    stack = SeedStack(*stacked_weights(model, x.shape[1], 2, data.n_classes, seeds, torch.float64))
     rows = torch.arange(len(seeds) * n_draws * batch).view(len(seeds), -1) * 7 % len(y)
     onehot = F.one_hot(y, data.n_classes).double()
-    grads = _draw_gradients(stack, x[rows], onehot[rows].transpose(1, 2), "tanh", n_draws)
+    grads = draw_gradients(stack, x[rows], onehot[rows].transpose(1, 2), "tanh", n_draws)
     for k, seed in enumerate(seeds):
         net = build_mlp(model, x.shape[1], 2, data.n_classes, seed, torch.float64)
         linears = [m for m in net if isinstance(m, torch.nn.Linear)]
@@ -102,7 +102,7 @@ def test_tool_snr_matches_autograd_full_batch_signal_and_per_example_noise() -> 
     bs = [lin.bias.detach().view(1, 1, -1).expand(n_windows, -1, -1).contiguous() for lin in linears]
     rows = np.random.default_rng(3).integers(0, len(y), (n_windows, WINDOW, batch))
     onehot = F.one_hot(y, data.n_classes).double()
-    tool = _gradient_snr(_Stack(ws, bs), x, onehot, rows, "tanh")
+    tool = gradient_snr_db_by_layer(SeedStack(ws, bs), x, onehot, rows, "tanh")
 
     for layer, grads in enumerate(per_example):
         p = torch.stack(grads).numpy()
