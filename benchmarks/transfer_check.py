@@ -76,9 +76,12 @@ def main() -> int:
     print(f"  K* interval widened by the measurement's spread: {_ci(ci)}; {v.get('verdict')}")
     tg = t.get("target") or {}
     if tg:
-        print(f"target width {tg.get('width')} ({tg.get('extrapolation_factor')}): plan for {tg.get('depth_to_plan_for')} "
-              f"{tg.get('depth_to_plan_for_range')}, K* {tg.get('reversal_depth') or float('nan'):.1f} "
-              f"{_ci(tg.get('reversal_depth_ci'))}")
+        span = tg.get("depth_to_plan_for_range")
+        plan = (f"no single depth, the data allow {span[0]} to {span[1]}" if tg.get("plan_settled") is False and span
+                else f"plan for {tg.get('depth_to_plan_for')} {span}")
+        print(f"target width {tg.get('width')} ({tg.get('extrapolation_factor')}): {plan}, "
+              f"K* {tg.get('reversal_depth') or float('nan'):.1f} {_ci(tg.get('reversal_depth_ci'))}"
+              + (" (past the swept depths)" if tg.get("past_swept_depths") else ""))
     inside = v.get("inside")
     print(f"held_out_inside: {'none' if inside is None else str(inside).lower()}")
     return 0
