@@ -21,7 +21,7 @@ name: slow
 data: {source: digits}
 model: {width: 16}
 sweep: {depths: [1, 2, 3, 4], seeds: 2, seeds_per_cell: 1}
-train: {learning_rate: 0.001, max_updates: 5000, eval_every: 50, converge_when: {train_loss_below: 0.01}}
+train: {learning_rate: 0.001, max_updates: 1500, eval_every: 50, converge_when: {train_loss_below: 0.01}}
 probes: {n_points: 4, snr_window: 2}
 """
 
@@ -115,7 +115,7 @@ def test_changed_config_is_refused_and_nothing_is_lost(tiny_config: Path, tmp_pa
 
 
 def test_two_local_workers_record_every_cell_exactly_once(write_yaml, tmp_path: Path) -> None:
-    config = write_yaml(SLOW.replace("max_updates: 5000", "max_updates: 300"))
+    config = write_yaml(SLOW.replace("max_updates: 1500", "max_updates: 300"))
     out = tmp_path / "res"
     proc = _start(config, out, "--workers", "2")
     _, err = proc.communicate(timeout=300)
@@ -157,7 +157,7 @@ def test_five_kills_with_two_workers_then_a_clean_finish_match_an_uninterrupted_
     uninterrupted in-process run computes (same seeds, one thread: deterministic)."""
     import random
 
-    config = write_yaml(SLOW.replace("max_updates: 5000", "max_updates: 400"))
+    config = write_yaml(SLOW.replace("max_updates: 1500", "max_updates: 400"))
     cfg = load_config(config)
     out = tmp_path / "res"
     rng = random.Random(14)
