@@ -118,8 +118,15 @@ def _cost_words(cost: dict[str, Any], w: Words, p: str) -> str:
             return (f"one update costs the floating-point operations of the network as built "
                     f"({shape}), counted layer by layer up to K = {w.num(p + 'max_depth', 'd')}: "
                     "an analytic count that holds on any hardware")
+        # The fixed part is negative when the first layer (no gradient of its input, maybe fewer
+        # inputs) costs less than a generic hidden layer by more than the readout costs: say
+        # "less", never "plus -0.2".
+        fixed = (f"plus a fixed {w.num(p + 'intercept', '.3g@1e-6')} MFLOP"
+                 if (w.get(p + "intercept") or 0) >= 0 else
+                 f"less a fixed {w.num(p + 'intercept', '.3g@-1e-6')} MFLOP (the first layer "
+                 "costs less than the others)")
         return (f"one update costs {w.num(p + 'per_layer', '.3g@1e-6')} MFLOP per hidden layer "
-                f"plus a fixed {w.num(p + 'intercept', '.3g@1e-6')} MFLOP, counted analytically for "
+                f"{fixed}, counted analytically for "
                 f"the network as built ({shape}; forward and backward matrix products), so the "
                 "figure holds on any hardware")
     where = ("seconds per update this machine measured on the proxy runs, chosen with "

@@ -65,6 +65,7 @@ def test_lookup_follows_dotted_paths_and_gives_none_when_absent():
     (-0.8123, ".2f", "-0.81"),
     (0.05, "g@100", "5"),            # the factor after '@' multiplies first: 0.05 x 100 = 5
     (0.0123, ".3g@1e3", "12.3"),
+    (-213000.0, ".3g@-1e-6", "0.213"),  # a negative factor shows a negative amount as "less x"
     (6.5, "d", "6"),                 # round half to even (Python's round), then the 'd' format
     (7.5, "d", "8"),
     (12000.4, ",.0f", "12,000"),

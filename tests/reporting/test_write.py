@@ -113,6 +113,9 @@ def test_stored_folder_report_states_its_cost_basis_and_rate_caution(folder_repo
     # the fixture's runs predate the recorded shape: its config.yaml gives it (synthetic data)
     assert fit["planning"]["cost_basis"] == "flops"
     assert "MFLOP per hidden layer" in md and "64 inputs, hidden width 32, 4 classes, batch 32" in md
+    # the fixed part reads "plus x" or "less x", never "plus a fixed -x"
+    fixed = fit["planning"]["compute_optimal_depth"]["cost_model"]["intercept"]
+    assert ("plus a fixed" if fixed >= 0 else "less a fixed") in md and "fixed -" not in md
     assert "MFLOP per update" in md and "validation accuracy: median (spread over seeds)" in md
     # one fixed rate: the caution says which way T·lr·K went, with the tuning block to fix it
     assert "T·lr·K stays roughly constant" not in md
