@@ -235,7 +235,8 @@ def export_runs(store: SweepStore, folder: Path) -> list[RunResult]:
 # --------------------------------------------------------------------------- one worker
 
 def work(store: SweepStore, cfg: SweepFile, *, progress: Callable[[int], None] | None = None,
-         idle_wait_s: float = 2.0, linger_s: float = 0.0, keep_going: Callable[[], bool] | None = None) -> int:
+         idle_wait_s: float = 2.0, linger_s: float = 0.0, keep_going: Callable[[], bool] | None = None,
+         nap: Callable[[float], None] = time.sleep) -> int:
     """Claim and train cells until none is waiting or running; return how many this worker stored.
 
     A cell whose training raises is logged and stored as failed (see `SweepStore.fail`),
@@ -245,7 +246,8 @@ def work(store: SweepStore, cfg: SweepFile, *, progress: Callable[[int], None] |
     so this loop waits while others still run. With
     `linger_s`, an idle worker waits that long for newly planned cells (the next
     round of an adaptive sweep) before it stops. With `keep_going`, the loop stops between
-    cells once it answers False (a local worker whose `run` was killed).
+    cells once it answers False (a local worker whose `run` was killed). An idle worker
+    waits with `nap(idle_wait_s)`, which may return early (when new cells are planned).
     """
     from ..train.datasets import load_dataset
     from ..train.loop import train_cell
@@ -261,14 +263,14 @@ def work(store: SweepStore, cfg: SweepFile, *, progress: Callable[[int], None] |
         claim = store.claim(cost)
         if claim is None:
             store.reap_stale()
-            counts = store.counts()
-            if counts["waiting"]:
+            waiting, running = store.pending()
+            if waiting:
                 continue
-            if not counts["running"]:
+            if not running:
                 idle_since = idle_since or time.monotonic()
                 if time.monotonic() - idle_since >= linger_s:
                     return done
-            time.sleep(idle_wait_s)
+            nap(idle_wait_s)
             continue
         idle_since = None
         spec = claim.spec
@@ -296,18 +298,103 @@ def work(store: SweepStore, cfg: SweepFile, *, progress: Callable[[int], None] |
     return done
 
 
-def _worker_process(cfg_dict: dict, url: str, name: str, queue: Any, parent: int) -> None:
+def _worker_process(cfg_dict: dict, url: str, name: str, queue: Any, round_no: Any, parent: int) -> None:
+    """One local worker of a `_Pool`: it trains what is planned, round after round, until told to stop."""
     import torch
 
     torch.set_num_threads(1)
     os.environ.setdefault("OMP_NUM_THREADS", "1")
     cfg = config_from_dict(cfg_dict)
     store = SweepStore(url, name)
-    try:
+
+    def keep_going() -> bool:
         # a worker whose `run` was killed finishes (and stores) its cell, then stops
-        work(store, cfg, progress=queue.put, keep_going=lambda: os.getppid() == parent)
+        return os.getppid() == parent and round_no.value >= 0
+
+    def nap(seconds: float) -> None:
+        # idle: wake as soon as the parent plans the next round (or stops the pool), not a poll later
+        seen, until = round_no.value, time.monotonic() + seconds
+        while time.monotonic() < until and round_no.value == seen and keep_going():
+            time.sleep(0.05)
+
+    try:
+        work(store, cfg, progress=queue.put, keep_going=keep_going, nap=nap, linger_s=float("inf"))
     except KeyboardInterrupt:
         pass
+
+
+class _Pool:
+    """Local worker processes that live across the rounds of one `run`.
+
+    Started when the first round has cells to train and kept until the sweep ends,
+    so the held-out round and adaptive rounds do not wait for fresh processes (each
+    re-imports torch, about 4 s here) and no worker idles out a poll between rounds.
+    """
+
+    def __init__(self, cfg: SweepFile, store: SweepStore, workers: int) -> None:
+        self.cfg, self.store, self.workers = cfg, store, workers
+        self.procs: list[Any] = []
+
+    def _start(self, n: int) -> None:
+        ctx = mp.get_context("spawn")
+        self.queue = ctx.Queue()
+        self.round_no = ctx.Value("i", 0)
+        self.procs = [ctx.Process(target=_worker_process, daemon=True,
+                                  args=(self.cfg.to_dict(), self.store.url, self.store.name, self.queue,
+                                        self.round_no, os.getpid()))
+                      for _ in range(n)]
+        for p in self.procs:
+            p.start()
+
+    def train(self, bar: Any, n_cells: int) -> int:
+        """Train the planned cells; return how many were stored once none waits or runs."""
+        before = len(self.store.completed_cells())
+        if not any(p.is_alive() for p in self.procs):     # first round, or every worker died
+            self.close()
+            self._start(min(self.workers, n_cells))
+        else:
+            with self.round_no.get_lock():
+                self.round_no.value += 1            # wakes idle workers at once
+        try:
+            next_check = time.monotonic() + 1.0
+            while any(p.is_alive() for p in self.procs):
+                try:
+                    bar.update(self.queue.get(timeout=0.25))
+                except Exception:  # queue.Empty: nothing reported in the last quarter second
+                    pass
+                if time.monotonic() >= next_check:
+                    next_check = time.monotonic() + 0.5
+                    if self.store.pending() == (0, 0):
+                        break
+        except KeyboardInterrupt:
+            for p in self.procs:
+                p.join(timeout=30)
+            raise
+        self._drain(bar)
+        return len(self.store.completed_cells()) - before
+
+    def _drain(self, bar: Any) -> None:
+        while True:
+            try:
+                bar.update(self.queue.get_nowait())
+            except Exception:  # queue.Empty
+                return
+
+    def close(self) -> None:
+        """Stop the workers (idle by now) and report any that exited badly."""
+        if not self.procs:
+            return
+        with self.round_no.get_lock():
+            self.round_no.value = -1
+        for p in self.procs:
+            p.join(timeout=10)
+            if p.is_alive():
+                p.terminate()
+                p.join()
+        bad = [p.exitcode for p in self.procs if p.exitcode]
+        if bad:
+            log.warning("%d worker process(es) exited with status %s", len(bad), bad)
+        self.procs = []
 
 
 # --------------------------------------------------------------------------- the whole sweep
@@ -351,7 +438,7 @@ class SweepSummary:
         return len(self.failed)
 
 
-def _train_round(cfg: SweepFile, store: SweepStore, cells: list[CellSpec], workers: int,
+def _train_round(cfg: SweepFile, store: SweepStore, cells: list[CellSpec], pool: _Pool | None,
                  show_progress: bool, label: str, retry_failed: bool) -> int:
     store.reclaim_dead_local()
     store.plan(cells, retry_failed=retry_failed)
@@ -362,11 +449,10 @@ def _train_round(cfg: SweepFile, store: SweepStore, cells: list[CellSpec], worke
     todo = [c for c in cells if c.cell_id not in stored]
     total = sum(len(c.seeds) for c in todo) * cfg.train.max_updates
     bar = _progress_bar(total, show_progress, f"{label}: {len(todo)} of {len(cells)} cells to train")
-    workers = min(workers, max(1, len(todo)))
     try:
-        if workers == 1:
+        if pool is None or len(todo) <= 1 and not pool.procs:
             return work(store, cfg, progress=bar.update)
-        return _run_processes(cfg, store, workers, bar)
+        return pool.train(bar, len(todo))
     finally:
         bar.close()
 
@@ -424,7 +510,7 @@ def _next_round(cfg: SweepFile, store: SweepStore, state: dict[str, Any]) -> boo
     return d.stop
 
 
-def _run_rounds(cfg: SweepFile, store: SweepStore, state: dict[str, Any], workers: int,
+def _run_rounds(cfg: SweepFile, store: SweepStore, state: dict[str, Any], workers: int, pool: _Pool | None,
                 show_progress: bool, plan_only: bool) -> int:
     """Tune, plan and train round after round until the schedule stops; return the cells trained."""
     n_trained = 0
@@ -438,7 +524,7 @@ def _run_rounds(cfg: SweepFile, store: SweepStore, state: dict[str, Any], worker
             return n_trained
         label = cfg.name if not state["rounds"] else f"{cfg.name} round {len(state['rounds']) + 1}"
         # failed cells are retried by the first round of a command, not by its later rounds
-        n_trained += _train_round(cfg, store, cells, workers, show_progress, label, retry_failed=first_round)
+        n_trained += _train_round(cfg, store, cells, pool, show_progress, label, retry_failed=first_round)
         first_round = False
         if cfg.sweep.adaptive is None or (state["rounds"] and state["rounds"][-1]["stop"]):
             return n_trained
@@ -536,14 +622,18 @@ def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int | N
             import torch
 
             torch.set_num_threads(1)   # a second thread never helped these small products, and hurts under load
+        pool = _Pool(cfg, store, workers) if workers > 1 else None
         try:
-            n_trained = _run_rounds(cfg, store, state, workers, show_progress, plan_only)
+            n_trained = _run_rounds(cfg, store, state, workers, pool, show_progress, plan_only)
             if cfg.sweep.verify is not None and not plan_only:
-                n_trained += _verify_round(cfg, folder, store, state, workers, show_progress)
+                n_trained += _verify_round(cfg, folder, store, state, pool, show_progress)
         except KeyboardInterrupt:
             results = export_runs(store, folder)
             raise Interrupted(f"interrupted: {len({r.cell_id for r in results})} cells are stored "
                               f"in {folder}; run the same command again to finish the rest") from None
+        finally:
+            if pool is not None:
+                pool.close()
         results = _write_outputs(cfg, folder, store, state)
     predicted = PREDICTION_KEY in store.meta()
     cells = plan_cells(cfg, state, sizes=all_sizes(cfg) if predicted and not plan_only else None)
@@ -555,7 +645,7 @@ def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int | N
                         _status_counts(results), state["rounds"], tuned, _summary_notes(cfg, results, tuned), failed)
 
 
-def _verify_round(cfg: SweepFile, folder: Path, store: SweepStore, state: dict[str, Any], workers: int,
+def _verify_round(cfg: SweepFile, folder: Path, store: SweepStore, state: dict[str, Any], pool: _Pool | None,
                   show_progress: bool) -> int:
     """Predict the held-out size from the stored swept sizes, store the prediction, then train it.
 
@@ -575,34 +665,7 @@ def _verify_round(cfg: SweepFile, folder: Path, store: SweepStore, state: dict[s
         write_sidecars(cfg, folder, store, state)          # the prediction is on disk before it trains
         log.info("%s: prediction for the held-out size stored before training it", cfg.name)
     cells = plan_cells(cfg, state, sizes=[verify_size(cfg)])
-    return _train_round(cfg, store, cells, workers, show_progress, f"{cfg.name} held-out size", retry_failed=True)
-
-
-def _run_processes(cfg: SweepFile, store: SweepStore, workers: int, bar: Any) -> int:
-    ctx = mp.get_context("spawn")
-    queue = ctx.Queue()
-    before = len(store.completed_cells())
-    procs = [ctx.Process(target=_worker_process, args=(cfg.to_dict(), store.url, store.name, queue, os.getpid()),
-                         daemon=True)
-             for _ in range(workers)]
-    for p in procs:
-        p.start()
-    try:
-        while any(p.is_alive() for p in procs) or not queue.empty():
-            try:
-                bar.update(queue.get(timeout=0.5))
-            except Exception:  # queue.Empty: nothing reported in the last half second
-                pass
-    except KeyboardInterrupt:
-        for p in procs:
-            p.join(timeout=30)
-        raise
-    for p in procs:
-        p.join()
-    bad = [p.exitcode for p in procs if p.exitcode]
-    if bad:
-        log.warning("%d worker process(es) exited with status %s", len(bad), bad)
-    return len(store.completed_cells()) - before
+    return _train_round(cfg, store, cells, pool, show_progress, f"{cfg.name} held-out size", retry_failed=True)
 
 
 class _NoBar:

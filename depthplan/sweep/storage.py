@@ -220,6 +220,14 @@ class SweepStore:
                 out[key] += 1
         return out
 
+    def pending(self) -> tuple[int, int]:
+        """(waiting, running) cells; cheap to poll, as finished cells and their runs are not read."""
+        from optuna.trial import TrialState
+
+        trials = self._trials((TrialState.WAITING, TrialState.RUNNING))
+        running = sum(t.state == TrialState.RUNNING for t in trials)
+        return len(trials) - running, running
+
     # ---------------------------------------------------------------- working
     def reap_stale(self) -> None:
         """Fail and re-enqueue cells whose worker stopped sending heartbeats."""

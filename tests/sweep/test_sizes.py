@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import csv
 import json
+import os
 import subprocess
 import sys
 from datetime import datetime
@@ -160,6 +161,25 @@ def test_two_widths_and_a_held_out_width_end_to_end(write_yaml, tmp_path):
     assert t["target"]["width"] == 32 and t["target"]["train_rows"] == 1200
     assert t["headline_size"] == {"width": 12, "train_rows": 600}
     assert "Target (width 32, 1200 training rows" in proc.stdout
+
+
+def test_two_workers_serve_the_swept_and_the_held_out_round_without_a_respawn(write_yaml, tmp_path):
+    # the pool keeps round one's processes for the held-out round (a respawn re-imports torch): the
+    # cells of both rounds name at most the same two worker pids, and the prediction still precedes
+    # the first held-out start
+    cfg = load_config(write_yaml(SIZED))
+    out = tmp_path / "res"
+    summary = run_sweep(cfg, out=out, workers=2, show_progress=False)
+    assert summary.n_trained == 5 * 3 and summary.n_runs == 5 * 3 * 2
+    stored = SweepStore(local_url(out), "sized")
+    trials = [t for t in stored.study.get_trials(deepcopy=False) if t.user_attrs.get("cell_id")]
+    holders = {t.user_attrs["cell_id"]: t.system_attrs["depthplan_worker"] for t in trials}
+    # (fresh processes for the held-out round would make three or four holders: two per round)
+    assert len(holders) == 15 and len(set(holders.values())) <= 2
+    assert all(not h.endswith(f":{os.getpid()}") for h in holders.values())       # none trained in-process
+    made = datetime.strptime(stored.meta()[PREDICTION_KEY]["predicted_at"], "%Y-%m-%dT%H:%M:%S%z").timestamp()
+    assert made <= min(t.datetime_start.timestamp() for t in trials
+                       if t.user_attrs["cell_id"].startswith("W12-")) + 1.0
 
 
 def test_plain_tiny_sweep_writes_no_size_facts(tiny_config, tmp_path):
