@@ -1,6 +1,6 @@
 """The package's import graph follows the layout of shared/STYLE.md section 1 (read with ast, nothing imported).
 
-Wings: base (errors, records, config, checks, information, __init__, __main__) <- train <- sweep <- cli and
+Wings: base (errors, records, config, checks, information, forked, __init__, __main__) <- train <- sweep <- cli and
 base <- fitting <- reporting <- cli; the Python API (api) stands on the top floor beside cli. sweep may also use fitting (the adaptive schedule fits between
 rounds; fitting is torch-free, so no circle and no torch enters through it). Nothing imports cli;
 fitting and reporting never reach torch or train; fitting never reaches matplotlib.
@@ -13,7 +13,7 @@ from pathlib import Path
 import pytest
 
 PKG = Path(__file__).resolve().parents[1] / "depthplan"
-BASE = {"errors", "records", "fit_record", "urls", "config", "checks", "information", "__init__"}
+BASE = {"errors", "records", "fit_record", "urls", "config", "checks", "information", "forked", "__init__"}
 ALLOWED = {            # wing -> wings it may import (besides itself)
     "base": {"base"},
     "train": {"base"},

@@ -22,6 +22,7 @@ from pathlib import Path
 
 from ..config import SweepFile
 from ..errors import ConfigError, StoreError
+from ..forked import available_cores  # noqa: F401  (re-exported: `--workers` defaults to it)
 from ..records import CellSpec
 
 log = logging.getLogger(__name__)
@@ -188,11 +189,3 @@ def _gb(n: float) -> str:
 def expected_cost(cfg: SweepFile, spec: CellSpec) -> float:
     """Relative cost of a cell before it runs: its seeds times the time of one update at its depth."""
     return len(spec.seeds) * seconds_per_update(cfg, spec.depth)
-
-
-def available_cores() -> int:
-    """Cores this process may run on (its CPU affinity), else the machine's count."""
-    try:
-        return max(1, len(os.sched_getaffinity(0)))
-    except (AttributeError, OSError):
-        return max(1, os.cpu_count() or 1)
