@@ -72,6 +72,7 @@ import numpy as np
 from scipy import stats
 
 from ..errors import DataError
+from ..forked import fork_map
 from ..records import STATUSES, ReversalStatus, RunResult, group_runs, primary_group, write_text_atomic
 from .depthlaw import (
     RunArrays,
@@ -385,13 +386,23 @@ def _size_fits(sizes: dict[tuple[int, int], list[RunResult]], kw: dict[str, Any]
                source: str) -> tuple[dict[tuple[int, int], dict[str, Any]], dict[tuple[int, int], str]]:
     """Each size's fit of its primary rate curve, and the reason for every size that cannot be fitted."""
     fits, skipped = {}, {}
-    for size, rs in sizes.items():
-        groups = group_runs(rs)
-        try:
-            fits[size] = _fit_group(groups[primary_group(groups)], source=f"{source or 'input'} (size {size})", **kw)
-        except DataError as exc:
-            skipped[size] = str(exc)
+    items = [(size, rs, source) for size, rs in sizes.items()]
+    for (size, _, _), (fit, why) in zip(items, fork_map(_fit_size, items, shared=kw)):   # independent: one per core
+        if fit is not None:
+            fits[size] = fit
+        else:
+            skipped[size] = why
     return fits, skipped
+
+
+def _fit_size(kw: dict[str, Any], item: tuple[tuple[int, int], list[RunResult], str]) -> tuple[dict[str, Any] | None, str]:
+    """One size's fit of its primary rate curve, or None and why it cannot be fitted (`fork_map` piece)."""
+    size, rs, source = item
+    groups = group_runs(rs)
+    try:
+        return _fit_group(groups[primary_group(groups)], source=f"{source or 'input'} (size {size})", **kw), ""
+    except DataError as exc:
+        return None, str(exc)
 
 
 def _transfer(size_fits: dict[tuple[int, int], dict[str, Any]], skipped: dict[tuple[int, int], str],

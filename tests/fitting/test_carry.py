@@ -16,6 +16,7 @@ import pytest
 from depthplan.fit_record import FitResult
 from depthplan.fitting.assemble import fit_runs
 from depthplan.records import write_runs_csv
+from depthplan.forked import can_fork
 from fitting_data import k_star, sweep
 
 Z = 1.959963984540054
@@ -76,3 +77,17 @@ def test_fit_of_a_folder_takes_target_and_held_out_size_from_sweep_json(tmp_path
     assert fit["transfer"]["target"]["width"] == 256 and fit["transfer"]["verify"]["width"] == 128
     fit, _ = fit_path(tmp_path, n_boot=60, target={"width": 1024, "train_rows": None})   # a flag overrides
     assert fit["transfer"]["target"]["width"] == 1024
+
+
+@pytest.mark.skipif(not can_fork(), reason="needs two cores and fork")
+def test_the_sizes_fitted_in_forked_processes_equal_the_fit_in_one_process(monkeypatch):
+    """The reference is the plain loop in this process (DEPTHPLAN_SERIAL=1); the sizes follow
+    the generator's known corner K* = 2 sqrt(width) (fitting_data.k_star)."""
+    runs = sweep([16, 32, 64, 128])
+    fits = {}
+    for serial in ("1", "0"):
+        monkeypatch.setenv("DEPTHPLAN_SERIAL", serial)
+        fits[serial] = fit_runs(runs, n_boot=60, target={"width": 512, "train_rows": None})
+    assert json.dumps(fits["0"]) == json.dumps(fits["1"])
+    for row in fits["0"]["transfer"]["sizes"]:
+        assert abs(row["reversal_depth"] / k_star(row["width"]) - 1) < 0.15
