@@ -29,6 +29,7 @@ from ..errors import DataError, DepthplanError
 from ..fit_record import FitResult, given
 from ..fitting.assemble import SCHEMA, fit_path
 from ..fitting.inputs import load_runs, read_sweep_info
+from ..forked import fork_map
 from ..records import write_text_atomic
 from . import dynamics_figures as TF
 from . import figures as F
@@ -363,14 +364,19 @@ _FIGURES = (_scaling_figure, _rates_figure, _cost_figure, _loss_figure, _dynamic
 
 def draw_figures(inp: ReportInputs, folder: Path) -> list[FigureFile]:
     """Draw every figure the inputs support and write each as PNG and SVG into `folder`."""
-    made = []
-    for draw in _FIGURES:
-        drawn = draw(inp)
-        if drawn is not None:
-            fig, name, title, caption, alt = drawn
-            png, svg = F.save_figure(fig, folder, name)
-            made.append(FigureFile(name, title, caption, alt, png, svg))
-    return made
+    shared = (inp, folder)
+    return [f for f in fork_map(_draw_and_save, _FIGURES, shared=shared) if f is not None]   # one per core
+
+
+def _draw_and_save(shared: tuple[ReportInputs, Path], draw: Any) -> FigureFile | None:
+    """One figure drawn and written (a `fork_map` piece); None when the inputs do not support it."""
+    inp, folder = shared
+    drawn = draw(inp)
+    if drawn is None:
+        return None
+    fig, name, title, caption, alt = drawn
+    png, svg = F.save_figure(fig, folder, name)
+    return FigureFile(name, title, caption, alt, png, svg)
 
 
 # ---------------------------------------------------------------- the report

@@ -315,3 +315,21 @@ def test_information_plane_only_when_recorded_and_the_late_check_in_words(tmp_pa
     line = next(x for x in format_summary(json.loads(with_info["fit"].read_text())).splitlines()
                 if x.startswith("Probes:"))
     assert "(T/2 to T) 0.50" in line and ": agree (the intervals overlap)" in line
+
+
+@pytest.mark.skipif(not __import__("depthplan.forked").forked.can_fork(), reason="needs two cores and fork")
+def test_figures_drawn_in_forked_processes_are_the_bytes_drawn_in_one(tmp_path, monkeypatch):
+    """The reference is the plain loop in this process (DEPTHPLAN_SERIAL=1): same figures, same order, same bytes."""
+    from depthplan.reporting.write import draw_figures, read_inputs
+
+    folder = tmp_path / "in"
+    shutil.copytree(FIXTURE, folder)
+    inp = read_inputs(folder, folder / "fit.json", n_boot=N_BOOT)
+    made = {}
+    for serial in ("1", "0"):
+        monkeypatch.setenv("DEPTHPLAN_SERIAL", serial)
+        made[serial] = draw_figures(inp, tmp_path / f"figures-{serial}")
+    assert len(made["0"]) >= 4
+    assert [(f.name, f.title, f.caption, f.alt) for f in made["0"]] == [(f.name, f.title, f.caption, f.alt) for f in made["1"]]
+    for a, b in zip(made["0"], made["1"]):
+        assert a.png.read_bytes() == b.png.read_bytes() and a.svg.read_bytes() == b.svg.read_bytes()
