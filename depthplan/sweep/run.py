@@ -688,7 +688,10 @@ def _progress_bar(total: int, show: bool, desc: str, unit: str = " seed-updates"
         return _NoBar()
     from tqdm import tqdm
 
-    return tqdm(total=total, desc=desc, unit=unit, unit_scale=True, dynamic_ncols=True,
+    class _Bar(tqdm):
+        monitor_interval = 0     # no monitor thread: the report forks its helpers only with one thread alive
+
+    return _Bar(total=total, desc=desc, unit=unit, unit_scale=True, dynamic_ncols=True,
                 mininterval=0.5, smoothing=0.05)
 
 
