@@ -33,6 +33,9 @@ import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(ROOT))
+
+from depthplan.forked import available_cores  # noqa: E402  (torch-free: `--workers`' own default)
 
 CELL = """
 import sys, time, torch
@@ -54,10 +57,6 @@ t = time.perf_counter()
 train_cell(spec, ModelConfig(width=32, activation="tanh"), train, probes, data)
 print(time.perf_counter() - t)
 """
-
-
-def available_cores() -> int:
-    return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
 
 
 def run_copies(n: int, updates: int) -> list[float]:

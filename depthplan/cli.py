@@ -28,7 +28,8 @@ class _Parser(argparse.ArgumentParser):
 
 def _cmd_check(args: argparse.Namespace) -> int:
     from .config import load_config
-    from .sweep.guards import available_cores, check_memory, plan_size
+    from .forked import available_cores
+    from .sweep.guards import check_memory, plan_size
     from .sweep.run import output_folder, plan_cells
     from .train.datasets import load_dataset
 
@@ -80,7 +81,8 @@ def _train_sweep(config: Path, args: argparse.Namespace) -> Path:
     from .sweep.storage import STORAGE_ENV
     from .urls import redact
 
-    from .sweep.guards import available_cores, check_memory, confirm_size, plan_size
+    from .forked import available_cores
+    from .sweep.guards import check_memory, confirm_size, plan_size
     from .sweep.run import plan_cells
 
     cfg = load_config(config)

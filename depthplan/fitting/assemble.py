@@ -386,8 +386,8 @@ def _size_fits(sizes: dict[tuple[int, int], list[RunResult]], kw: dict[str, Any]
                source: str) -> tuple[dict[tuple[int, int], dict[str, Any]], dict[tuple[int, int], str]]:
     """Each size's fit of its primary rate curve, and the reason for every size that cannot be fitted."""
     fits, skipped = {}, {}
-    items = [(size, rs, source) for size, rs in sizes.items()]
-    for (size, _, _), (fit, why) in zip(items, fork_map(_fit_size, items, shared=kw)):   # independent: one per core
+    items = list(sizes.items())
+    for (size, _), (fit, why) in zip(items, fork_map(_fit_size, items, shared=(kw, source))):   # one per core
         if fit is not None:
             fits[size] = fit
         else:
@@ -395,9 +395,11 @@ def _size_fits(sizes: dict[tuple[int, int], list[RunResult]], kw: dict[str, Any]
     return fits, skipped
 
 
-def _fit_size(kw: dict[str, Any], item: tuple[tuple[int, int], list[RunResult], str]) -> tuple[dict[str, Any] | None, str]:
+def _fit_size(shared: tuple[dict[str, Any], str], item: tuple[tuple[int, int], list[RunResult]]
+              ) -> tuple[dict[str, Any] | None, str]:
     """One size's fit of its primary rate curve, or None and why it cannot be fitted (`fork_map` piece)."""
-    size, rs, source = item
+    kw, source = shared
+    size, rs = item
     groups = group_runs(rs)
     try:
         return _fit_group(groups[primary_group(groups)], source=f"{source or 'input'} (size {size})", **kw), ""

@@ -22,7 +22,6 @@ from pathlib import Path
 
 from ..config import SweepFile
 from ..errors import ConfigError, StoreError
-from ..forked import available_cores  # noqa: F401  (re-exported: `--workers` defaults to it)
 from ..records import CellSpec
 
 log = logging.getLogger(__name__)

@@ -22,6 +22,7 @@ from typing import Any, Callable
 
 from ..config import SweepFile, config_from_dict, dump_config
 from ..errors import ConfigError, DepthplanError, RunFailed, StoreError, first_line
+from ..forked import available_cores
 from ..records import (
     CellSpec,
     RunResult,
@@ -608,7 +609,7 @@ def run_sweep(cfg: SweepFile, *, out: str | Path | None = None, workers: int | N
         StoreError: the folder holds a different sweep, or is in use.
         Interrupted: Ctrl-C; finished cells stay stored and a rerun does the rest.
     """
-    workers = guards.available_cores() if workers is None else workers
+    workers = available_cores() if workers is None else workers
     if workers < 1:
         raise ConfigError(f"--workers: must be a positive integer, got {workers}")
     guards.check_memory(cfg, plan_cells(cfg))
