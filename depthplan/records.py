@@ -9,7 +9,7 @@ import csv
 import io
 import json
 import math
-from dataclasses import asdict, dataclass, field, fields
+from dataclasses import dataclass, field, fields
 from enum import Enum
 from pathlib import Path
 from typing import Any, Mapping, Protocol, Sequence
@@ -162,8 +162,10 @@ class RunResult:
         return self.probe_steps if key == "displacement" else self.snr_probe_steps
 
     def to_dict(self) -> dict[str, Any]:
-        """Plain JSON-ready dict (tuples become lists, NaN becomes None)."""
-        return _jsonable(asdict(self))
+        """Plain JSON-ready dict (tuples become lists, NaN becomes None). `_jsonable` copies every
+        container itself, so the fields are read directly (asdict's deep copy of the curves and
+        probe series cost more than the rest of storing a run)."""
+        return _jsonable({f.name: getattr(self, f.name) for f in fields(self)})
 
     @classmethod
     def from_dict(cls, d: dict[str, Any]) -> "RunResult":
