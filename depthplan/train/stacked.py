@@ -216,12 +216,16 @@ def _evaluate(stack: SeedStack, x: torch.Tensor, y: torch.Tensor, act: str) -> t
     hits = torch.zeros(n_seeds, dtype=torch.float64)
     # two activation buffers used in turn: a fresh large tensor per layer costs its page faults each time
     scratch = torch.empty(2, n_seeds * min(step, n_rows) * width, dtype=x.dtype)
+    hidden = list(zip(stack.ws[:-1], stack.bs[:-1]))
+    if act == "tanh":       # 2z from doubled weights, made once: tanh_'s first pass over the rows, saved
+        hidden = [(w * 2.0, b * 2.0) for w, b in hidden]          # (doubling is exact: same bits)
     for lo in range(0, n_rows, step):
         xc, yc = x[lo:lo + step], y[lo:lo + step]
         h = xc.expand(n_seeds, -1, -1)                  # every seed sees the same rows
-        for i, (w, b) in enumerate(zip(stack.ws[:-1], stack.bs[:-1])):
+        for i, (w, b) in enumerate(hidden):
             out = scratch[i % 2, : n_seeds * len(yc) * w.shape[2]].view(n_seeds, len(yc), w.shape[2])
-            h = _activate(act, torch.baddbmm(b, h, w, out=out))     # (n_seeds, rows, width)
+            z = torch.baddbmm(b, h, w, out=out)         # (n_seeds, rows, width)
+            h = _from_sigmoid(z.sigmoid_()) if act == "tanh" else _activate(act, z)
         z = stack.logits(h)                             # (n_seeds, n_classes, rows)
         top = z.amax(dim=1, keepdim=True)
         picked = z.gather(1, yc.view(1, 1, -1).expand(n_seeds, 1, -1))
