@@ -36,11 +36,13 @@ def tanh_(z: torch.Tensor) -> torch.Tensor:
     of about one rounding step of 1.0, so tanh's derivative taken from it, 1 - h^2, is as good.
     No autograd: the in-place passes overwrite what sigmoid's backward would need.
     """
-    return _from_sigmoid(z.mul_(2.0).sigmoid_())
+    return _tanh_of_doubled(z.mul_(2.0))
 
 
-def _from_sigmoid(s: torch.Tensor) -> torch.Tensor:
-    """2 s - 1 in place, in one pass (2 s is exact, so this rounds as s.mul_(2).sub_(1) does)."""
+def _tanh_of_doubled(z2: torch.Tensor) -> torch.Tensor:
+    """tanh(z) in place from z2 = 2 z: s = sigmoid(z2), then 2 s - 1 in one pass (2 s is exact, so
+    this rounds as s.mul_(2).sub_(1) does). Callers that can produce 2 z for free skip tanh_'s first pass."""
+    s = z2.sigmoid_()
     return torch.add(-1.0, s, alpha=2.0, out=s)
 
 
@@ -58,11 +60,8 @@ def _linear_act(act: str, b: torch.Tensor, h: torch.Tensor, w: torch.Tensor,
     layer and step, which is what a narrow network's step costs.
     """
     if act != "tanh":
-        z = torch.baddbmm(b, h, w) if out is None else torch.baddbmm(b, h, w, out=out)
-        return _activate(act, z)
-    z = torch.baddbmm(b, h, w, beta=2.0, alpha=2.0) if out is None else \
-        torch.baddbmm(b, h, w, beta=2.0, alpha=2.0, out=out)
-    return _from_sigmoid(z.sigmoid_())
+        return _activate(act, torch.baddbmm(b, h, w, out=out))
+    return _tanh_of_doubled(torch.baddbmm(b, h, w, beta=2.0, alpha=2.0, out=out))
 
 
 def _activate(name: str, z: torch.Tensor, inplace: bool = True) -> torch.Tensor:
@@ -225,7 +224,7 @@ def _evaluate(stack: SeedStack, x: torch.Tensor, y: torch.Tensor, act: str) -> t
         for i, (w, b) in enumerate(hidden):
             out = scratch[i % 2, : n_seeds * len(yc) * w.shape[2]].view(n_seeds, len(yc), w.shape[2])
             z = torch.baddbmm(b, h, w, out=out)         # (n_seeds, rows, width)
-            h = _from_sigmoid(z.sigmoid_()) if act == "tanh" else _activate(act, z)
+            h = _tanh_of_doubled(z) if act == "tanh" else _activate(act, z)
         z = stack.logits(h)                             # (n_seeds, n_classes, rows)
         top = z.amax(dim=1, keepdim=True)
         picked = z.gather(1, yc.view(1, 1, -1).expand(n_seeds, 1, -1))
